@@ -1,0 +1,362 @@
+"""Read and validate shotpair configuration files (TOML) into typed settings.
+
+A file holds a bench section (which driver for each instrument, and calibrations), a scan section
+(delay grid, shots, sweeps, order, output) and, for the simulated bench, a simulation section; one file
+may hold all three. Every problem a user can make is turned into one ConfigError that names the file,
+the key path, the bad value and what is allowed. This module never touches an instrument.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import os
+import tomllib
+from pathlib import Path
+from typing import Annotated, Any, Literal, Union
+
+import numpy as np
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from shotpair.drivers.delay_line import DelayLine, air_group_index
+from shotpair.drivers.errors import ConfigError
+from shotpair.simulators.settings import SimulationSettings
+
+__all__ = [
+    "DelayAxisSettings",
+    "ChopperSettings",
+    "ShutterSettings",
+    "DetectorSettings",
+    "BenchSettings",
+    "LinearSegment",
+    "LogSegment",
+    "ListSegment",
+    "ScanSettings",
+    "ShotpairConfig",
+    "LoadedConfig",
+    "load_config",
+    "parse_config",
+]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class DelayAxisSettings(_Strict):
+    """The delay-line stage and its calibration."""
+
+    driver: str = Field("sim", description="Driver name (`sim` for the simulated bench).")
+    options: dict[str, Any] = Field(default_factory=dict, description="Driver-specific settings.")
+    passes: int = Field(4, ge=1, le=16, description="Optical path change per unit stage travel (2: single retroreflector, 4: double pass).")
+    time_zero_mm: float = Field(10.0, description="Stage position where pump and probe overlap, mm.")
+    travel_mm: tuple[float, float] = Field((0.0, 150.0), description="Lowest and highest position the stage may be sent to, mm.")
+    delayed_beam: Literal["probe", "pump"] = Field("probe", description="Which beam runs over the stage.")
+    medium: Literal["air", "vacuum"] = Field("air", description="Medium of the delay line (air: Ciddor 1996 group index).")
+    centre_wavelength_nm: float = Field(800.0, gt=200.0, lt=2000.0, description="Wavelength of the beam on the stage, for the air group index, nm.")
+    home_on_connect: bool = Field(True, description="Home the stage when the bench connects.")
+    velocity_mm_per_s: float = Field(50.0, gt=0.0, description="Typical speed, used only to estimate scan durations, mm/s.")
+    settle_timeout_s: float = Field(30.0, gt=0.0, description="Longest wait for a move to finish and settle, s.")
+
+    @field_validator("travel_mm")
+    @classmethod
+    def _ordered(cls, v: tuple[float, float]) -> tuple[float, float]:
+        if not v[0] < v[1]:
+            raise ValueError("travel_mm must be [low, high] with low < high")
+        return v
+
+    @model_validator(mode="after")
+    def _zero_inside(self) -> "DelayAxisSettings":
+        lo, hi = self.travel_mm
+        if not lo <= self.time_zero_mm <= hi:
+            raise ValueError(f"time_zero_mm = {self.time_zero_mm} lies outside travel_mm [{lo}, {hi}]")
+        return self
+
+    def delay_line(self) -> DelayLine:
+        n_g = air_group_index(self.centre_wavelength_nm) if self.medium == "air" else 1.0
+        return DelayLine(self.passes, self.time_zero_mm, self.delayed_beam, n_g)
+
+
+class ChopperSettings(_Strict):
+    """The pump chopper, locked to the laser."""
+
+    driver: str = "sim"
+    options: dict[str, Any] = Field(default_factory=dict)
+    frequency_hz: float | None = Field(None, gt=0.0, description="Blade frequency, Hz; default half the repetition rate.")
+    phase_deg: float = Field(0.0, ge=-360.0, le=360.0, description="Blade phase relative to the laser trigger, degrees.")
+    require_lock: bool = Field(True, description="Refuse to acquire while the chopper is not locked.")
+
+
+class ShutterSettings(_Strict):
+    """The beam shutter (closed blocks the laser; used to measure the dark)."""
+
+    driver: str = "sim"
+    options: dict[str, Any] = Field(default_factory=dict)
+
+
+class DetectorSettings(_Strict):
+    """The spectrometer's line camera and its calibration."""
+
+    driver: str = "sim"
+    options: dict[str, Any] = Field(default_factory=dict)
+    pixels: int = Field(1024, ge=2, le=16384, description="Pixels per spectrum.")
+    gain_e_per_count: float = Field(4.0, gt=0.0, description="Photoelectrons per count.")
+    read_noise_e: float = Field(12.0, ge=0.0, description="Read noise, photoelectrons rms.")
+    dark_counts: float | None = Field(None, ge=0.0, le=65535.0, description="Fixed dark level in counts; omit to measure the dark through the closed shutter at scan start.")
+    saturation_counts: int = Field(65535, ge=1, le=65535, description="Raw count at or above which a pixel is treated as saturated.")
+    wavelength_poly_nm: list[float] = Field([420.0, 0.29325513], min_length=1, max_length=6, description="Pixel to wavelength polynomial c0 + c1 p + c2 p^2 ..., nm (p = pixel index from 0).")
+    has_reference: bool = Field(False, description="A reference detector reads the probe before the sample.")
+    block_shots: int = Field(500, ge=2, le=100000, description="Shots read from the detector per block.")
+
+    def wavelengths_nm(self) -> np.ndarray:
+        p = np.arange(self.pixels, dtype=np.float64)
+        return np.polynomial.polynomial.polyval(p, np.asarray(self.wavelength_poly_nm, dtype=np.float64))
+
+    @model_validator(mode="after")
+    def _monotonic(self) -> "DetectorSettings":
+        w = self.wavelengths_nm()
+        d = np.diff(w)
+        if not (np.all(w > 0) and (np.all(d > 0) or np.all(d < 0))):
+            raise ValueError(f"wavelength_poly_nm gives wavelengths {w[0]:.6g}..{w[-1]:.6g} nm that are not positive "
+                             "and strictly monotonic over the pixels")
+        return self
+
+
+class BenchSettings(_Strict):
+    """Everything about the bench: which instruments, how they are calibrated."""
+
+    name: str = Field("bench", description="A name for this bench, stored in output files.")
+    repetition_rate_hz: float = Field(1000.0, gt=0.0, le=200_000.0, description="Laser repetition rate, Hz.")
+    delay_axis: DelayAxisSettings = Field(default_factory=DelayAxisSettings)
+    chopper: ChopperSettings = Field(default_factory=ChopperSettings)
+    shutter: ShutterSettings = Field(default_factory=ShutterSettings)
+    detector: DetectorSettings = Field(default_factory=DetectorSettings)
+    dark_shots: int = Field(1000, ge=2, le=10_000_000, description="Shots averaged for the dark at scan start.")
+
+    def uses_simulator(self) -> bool:
+        return any(getattr(self, k).driver == "sim" for k in ("delay_axis", "chopper", "shutter", "detector"))
+
+
+class LinearSegment(_Strict):
+    """Evenly spaced delays from start to stop inclusive."""
+
+    kind: Literal["linear"]
+    start_ps: float
+    stop_ps: float
+    step_ps: float = Field(gt=0.0)
+
+    @model_validator(mode="after")
+    def _enough(self) -> "LinearSegment":
+        if self.stop_ps < self.start_ps:
+            raise ValueError("stop_ps must not be below start_ps")
+        if (self.stop_ps - self.start_ps) / self.step_ps > 1_000_000:
+            raise ValueError("more than a million points in one segment")
+        return self
+
+    def delays_ps(self) -> np.ndarray:
+        n = int(math.floor((self.stop_ps - self.start_ps) / self.step_ps + 1e-9)) + 1
+        return self.start_ps + self.step_ps * np.arange(n)
+
+
+class LogSegment(_Strict):
+    """Logarithmically spaced delays from start to stop inclusive (both positive)."""
+
+    kind: Literal["log"]
+    start_ps: float = Field(gt=0.0)
+    stop_ps: float = Field(gt=0.0)
+    points: int = Field(ge=2, le=100_000)
+
+    @model_validator(mode="after")
+    def _ordered(self) -> "LogSegment":
+        if self.stop_ps <= self.start_ps:
+            raise ValueError("stop_ps must be above start_ps")
+        return self
+
+    def delays_ps(self) -> np.ndarray:
+        return np.geomspace(self.start_ps, self.stop_ps, self.points)
+
+
+class ListSegment(_Strict):
+    """Delays given one by one."""
+
+    kind: Literal["list"]
+    delays_ps: list[float] = Field(min_length=1)
+
+    def delays_ps_array(self) -> np.ndarray:
+        return np.asarray(self.delays_ps, dtype=np.float64)
+
+
+Segment = Annotated[Union[LinearSegment, LogSegment, ListSegment], Field(discriminator="kind")]
+
+
+class ScanSettings(_Strict):
+    """One scan: which delays, how many shots, in what order, where the data go."""
+
+    title: str = Field("scan", description="A short title stored in the output file.")
+    delays: list[Segment] = Field(min_length=1, description="Delay grid: linear, log and list segments, merged.")
+    shots_per_point: int = Field(ge=2, le=100_000_000, description="Laser shots per delay point and sweep.")
+    sweeps: int = Field(1, ge=1, le=100_000, description="Passes over the whole delay grid.")
+    order: Literal["ascending", "descending", "alternating", "shuffled"] = Field("alternating")
+    seed: int | None = Field(None, description="Seed of the shuffled order (and of the simulator when it has none).")
+    output: str = Field("shotpair-scan.h5", description="Output HDF5 file; relative paths start at the working folder. An existing file is never overwritten: a number is added.")
+    reject_threshold_mad: float = Field(6.0, gt=0.0, description="Shots further than this many robust standard deviations from the block median are rejected with their pair.")
+
+    @field_validator("output")
+    @classmethod
+    def _nonempty(cls, v: str) -> str:
+        if not v.strip():
+            raise ValueError("output must be a file path")
+        return v
+
+
+class ShotpairConfig(_Strict):
+    """A whole configuration file."""
+
+    bench: BenchSettings | None = None
+    scan: ScanSettings | None = None
+    simulation: SimulationSettings | None = None
+
+
+class LoadedConfig:
+    """A validated configuration with its origin (for messages) and its text (for the output file)."""
+
+    def __init__(self, config: ShotpairConfig, path: str, text: str) -> None:
+        self.config = config
+        self.path = path
+        self.text = text
+
+    @property
+    def bench(self) -> BenchSettings:
+        return self.config.bench or BenchSettings()
+
+    @property
+    def simulation(self) -> SimulationSettings:
+        return self.config.simulation or SimulationSettings()
+
+    def require_scan(self) -> ScanSettings:
+        if self.config.scan is None:
+            raise ConfigError("no [scan] section: this file describes no scan", file=self.path, key_path="scan")
+        return self.config.scan
+
+
+def _key_path(loc: tuple[Any, ...]) -> str:
+    parts: list[str] = []
+    for item in loc:
+        if isinstance(item, int):
+            parts.append(f"[{item}]")
+        elif item in ("linear", "log", "list") and parts and parts[-1].endswith("]"):
+            continue  # pydantic's tag of the union member: not a key the user wrote
+        else:
+            parts.append(("." if parts else "") + str(item))
+    return "".join(parts)
+
+
+def _model_at(loc: tuple[Any, ...]) -> type[BaseModel] | None:
+    """The model class that owns the last key of ``loc`` (to list the allowed keys)."""
+    model: Any = ShotpairConfig
+    for item in loc[:-1]:
+        if isinstance(item, int) or model is None:
+            continue
+        if item in ("linear", "log", "list"):
+            model = {"linear": LinearSegment, "log": LogSegment, "list": ListSegment}[item]
+            continue
+        field = getattr(model, "model_fields", {}).get(item)
+        if field is None:
+            return None
+        ann = field.annotation
+        model = _first_model(ann)
+    return model if isinstance(model, type) and issubclass(model, BaseModel) else None
+
+
+def _first_model(ann: Any) -> Any:
+    if isinstance(ann, type) and issubclass(ann, BaseModel):
+        return ann
+    for arg in getattr(ann, "__args__", ()) or ():
+        found = _first_model(arg)
+        if found is not None:
+            return found
+    return None
+
+
+def _describe(error: dict[str, Any], path: str) -> str:
+    loc = tuple(error.get("loc", ()))
+    key = _key_path(loc)
+    kind = error.get("type", "")
+    if kind == "extra_forbidden":
+        model = _model_at(loc)
+        allowed = sorted(model.model_fields) if model else []
+        hint = difflib.get_close_matches(str(loc[-1]), allowed, n=1)
+        msg = "unknown key" + (f" (did you mean {hint[0]!r}?)" if hint else "")
+        return ConfigError(msg, file=path, key_path=key, allowed=", ".join(allowed) or None).render()
+    if kind == "missing":
+        return ConfigError("required key is missing", file=path, key_path=key).render()
+    msg = str(error.get("msg", "invalid value"))
+    msg = msg.removeprefix("Value error, ")
+    return ConfigError(msg, file=path, key_path=key, value=error.get("input")).render()
+
+
+def parse_config(data: dict[str, Any], path: str = "<config>", text: str = "") -> LoadedConfig:
+    """Validate an already parsed TOML document. Raises ConfigError listing every problem found."""
+    try:
+        config = ShotpairConfig.model_validate(data)
+    except ValidationError as exc:
+        lines = [_describe(e, path) for e in exc.errors()]
+        first = exc.errors()[0]
+        raise ConfigProblems(lines, path, _key_path(tuple(first.get("loc", ())))) from None
+    loaded = LoadedConfig(config, path, text)
+    if config.scan is not None:
+        check_output(config.scan.output, path)
+    return loaded
+
+
+class ConfigProblems(ConfigError):
+    """Several problems found in one file, reported together as one message."""
+
+    def __init__(self, lines: list[str], file: str, key_path: str) -> None:
+        self.lines = lines
+        super().__init__("invalid configuration", file=file, key_path=key_path)
+
+    def render(self) -> str:
+        if len(self.lines) == 1:
+            return self.lines[0]
+        return f"{len(self.lines)} problems in the configuration:\n  " + "\n  ".join(self.lines)
+
+
+def check_output(output: str, config_path: str, key_path: str = "scan.output") -> None:
+    """Check that an output file could be created: its nearest existing folder must be writable."""
+    target = Path(output).expanduser()
+    if target.exists() and target.is_dir():
+        raise ConfigError("output is a folder, not a file", file=config_path, key_path=key_path, value=output,
+                          allowed="a path to an .h5 file")
+    folder = target.parent if str(target.parent) else Path(".")
+    probe = folder
+    while not probe.exists():
+        if probe.parent == probe:
+            break
+        probe = probe.parent
+    if not probe.is_dir() or not os.access(probe, os.W_OK | os.X_OK):
+        raise ConfigError(f"output folder {str(probe)!r} is not writable", file=config_path, key_path=key_path,
+                          value=output, allowed="a path in a folder you may write to")
+
+
+def load_config(path: str | os.PathLike[str]) -> LoadedConfig:
+    """Read and validate a TOML configuration file. Raises ConfigError for every user mistake."""
+    p = Path(path)
+    shown = str(path)
+    try:
+        raw = p.read_bytes()
+    except FileNotFoundError:
+        raise ConfigError("file not found", file=shown, allowed="an existing TOML file") from None
+    except IsADirectoryError:
+        raise ConfigError("is a folder, not a file", file=shown) from None
+    except OSError as exc:
+        raise ConfigError(f"cannot read the file ({exc.strerror})", file=shown) from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"not UTF-8 text (byte {exc.start})", file=shown) from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"not valid TOML: {exc}", file=shown) from None
+    return parse_config(data, shown, text)

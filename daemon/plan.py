@@ -1,0 +1,128 @@
+"""Turn validated scan and bench settings into a concrete plan: the delay grid, its stage positions
+and the order of points in every sweep, with an estimate of how long it takes.
+
+Pure computation: nothing here touches an instrument. A delay the stage cannot reach is a ConfigError
+that names the segment, so a bad scan is refused before anything moves.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from shotpair.drivers.errors import ConfigError
+
+from .config import BenchSettings, ListSegment, ScanSettings
+
+__all__ = ["ScanPlan", "build_grid_ps", "sweep_orders", "make_plan"]
+
+#: Delays closer than this are the same point (ps); far below any stage's resolution (1e-6 ps = 0.15 nm).
+_SAME_DELAY_PS = 1e-6
+
+
+def _segment_delays(segment: object) -> np.ndarray:
+    if isinstance(segment, ListSegment):
+        return segment.delays_ps_array()
+    return segment.delays_ps()  # type: ignore[attr-defined]
+
+
+def build_grid_ps(segments: list[object]) -> np.ndarray:
+    """Merge delay segments into one ascending grid in ps, duplicates (within 1e-6 ps) removed."""
+    allp = np.sort(np.concatenate([_segment_delays(s) for s in segments]))
+    keep = np.ones(allp.size, dtype=bool)
+    keep[1:] = np.diff(allp) > _SAME_DELAY_PS
+    return allp[keep]
+
+
+def sweep_orders(n_points: int, sweeps: int, order: str, seed: int | None) -> list[np.ndarray]:
+    """The index order of the grid points in each sweep.
+
+    ``alternating`` runs ascending on even sweeps and descending on odd ones; ``shuffled`` draws a fresh
+    permutation per sweep from a generator seeded with ``seed`` (so a rerun with the same seed repeats it).
+    """
+    up = np.arange(n_points)
+    if order == "ascending":
+        return [up.copy() for _ in range(sweeps)]
+    if order == "descending":
+        return [up[::-1].copy() for _ in range(sweeps)]
+    if order == "alternating":
+        return [up.copy() if k % 2 == 0 else up[::-1].copy() for k in range(sweeps)]
+    if order == "shuffled":
+        rng = np.random.default_rng(seed)
+        return [rng.permutation(n_points) for _ in range(sweeps)]
+    raise ValueError(f"unknown order {order!r}")
+
+
+@dataclass(frozen=True)
+class ScanPlan:
+    """Everything the runner needs to know about where to go and for how long."""
+
+    delays_ps: np.ndarray
+    positions_mm: np.ndarray
+    orders: list[np.ndarray]
+    shots_per_point: int
+    dark_shots: int
+    repetition_rate_hz: float
+    velocity_mm_per_s: float
+
+    @property
+    def n_points(self) -> int:
+        return int(self.delays_ps.size)
+
+    @property
+    def sweeps(self) -> int:
+        return len(self.orders)
+
+    @property
+    def total_points(self) -> int:
+        return self.n_points * self.sweeps
+
+    @property
+    def total_shots(self) -> int:
+        return self.total_points * self.shots_per_point + self.dark_shots
+
+    def point_time_s(self) -> float:
+        return self.shots_per_point / self.repetition_rate_hz
+
+    def travel_time_s(self) -> float:
+        """Estimated time in moves over all sweeps, from the configured typical stage velocity."""
+        total_mm = 0.0
+        previous = None
+        for order in self.orders:
+            path = self.positions_mm[order]
+            if previous is not None:
+                total_mm += abs(path[0] - previous)
+            total_mm += float(np.abs(np.diff(path)).sum())
+            previous = path[-1]
+        return total_mm / self.velocity_mm_per_s
+
+    def estimated_duration_s(self) -> float:
+        """Shots at the repetition rate plus the moves (a lower bound: settling and readout come on top)."""
+        return self.total_shots / self.repetition_rate_hz + self.travel_time_s()
+
+
+def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<config>") -> ScanPlan:
+    """Build the plan; raises ConfigError if a delay lies outside what the stage travel can reach."""
+    line = bench.delay_axis.delay_line()
+    low_ps, high_ps = line.delay_range_ps(bench.delay_axis.travel_mm)
+    for i, segment in enumerate(scan.delays):
+        d = _segment_delays(segment)
+        bad = d[(d < low_ps - _SAME_DELAY_PS) | (d > high_ps + _SAME_DELAY_PS)]
+        if bad.size:
+            raise ConfigError(
+                "delay outside the stage travel",
+                file=config_path,
+                key_path=f"scan.delays[{i}]",
+                value=float(bad[0]),
+                allowed=(f"{low_ps:.6g} to {high_ps:.6g} ps with travel_mm = {list(bench.delay_axis.travel_mm)}, "
+                         f"passes = {line.passes}, time_zero_mm = {line.time_zero_mm}"),
+            )
+    grid = build_grid_ps(list(scan.delays))
+    positions = np.asarray(line.position_mm(grid), dtype=np.float64)
+    lo, hi = bench.delay_axis.travel_mm
+    positions = np.clip(positions, lo, hi)  # only rounding at the very ends can step outside
+    orders = sweep_orders(grid.size, scan.sweeps, scan.order, scan.seed)
+    dark = bench.dark_shots if bench.detector.dark_counts is None else 0
+    return ScanPlan(grid, positions, orders, scan.shots_per_point, dark, bench.repetition_rate_hz,
+                    bench.delay_axis.velocity_mm_per_s)
