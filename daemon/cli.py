@@ -1,0 +1,186 @@
+"""The `shotpair` command line: check a configuration, run a scan on the bench it describes.
+
+User mistakes end with one line on stderr and a non-zero exit, never a traceback. The scan logic lives
+in runner.py; this module parses arguments, prints, and maps outcomes to exit codes.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import queue
+import signal
+import sys
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+from shotpair.drivers.errors import ConfigError, ShotpairError
+
+from .bench import build_bench
+from .config import LoadedConfig, check_output, load_config
+from .events import LogEvent, PointSaved, ScanEnded, ScanStarted
+from .plan import ScanPlan, make_plan
+from .progress import ProgressPrinter, format_duration
+from .runner import Runner, ScanJob, new_scan_id
+from .store import software_version, unique_path
+
+__all__ = ["main", "build_parser"]
+
+EXIT_OK, EXIT_SCAN_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
+
+
+def _load(args: argparse.Namespace) -> tuple[LoadedConfig, LoadedConfig]:
+    """(scan config, bench config): the bench comes from --bench if given, else from the same file."""
+    cfg = load_config(args.config)
+    bench_cfg = load_config(args.bench) if getattr(args, "bench", None) else cfg
+    if getattr(args, "bench", None) and bench_cfg.config.bench is None:
+        raise ConfigError("no [bench] section", file=bench_cfg.path, key_path="bench")
+    return cfg, bench_cfg
+
+
+def _plan(cfg: LoadedConfig, bench_cfg: LoadedConfig) -> ScanPlan:
+    return make_plan(cfg.require_scan(), bench_cfg.bench, cfg.path)
+
+
+def describe_plan(cfg: LoadedConfig, bench_cfg: LoadedConfig, plan: ScanPlan, output: str) -> str:
+    b = bench_cfg.bench
+    scan = cfg.require_scan()
+    w = b.detector.wavelengths_nm()
+    lines = [
+        f"config        {cfg.path}" + (f" (bench from {bench_cfg.path})" if bench_cfg is not cfg else ""),
+        f"bench         {b.name}: {b.repetition_rate_hz:g} Hz, detector {b.detector.pixels} px "
+        f"{w.min():.1f}-{w.max():.1f} nm, drivers " + ", ".join(f"{k}={getattr(b, k).driver}" for k in
+                                                              ("delay_axis", "chopper", "shutter", "detector")),
+        f"scan          {scan.title!r}: {plan.sweeps} sweep(s) x {plan.n_points} delay points, order {scan.order}",
+        f"delays        {plan.delays_ps.min():.6g} to {plan.delays_ps.max():.6g} ps",
+        f"stage         {plan.positions_mm.min():.4f} to {plan.positions_mm.max():.4f} mm "
+        f"(travel {list(b.delay_axis.travel_mm)} mm, {b.delay_axis.passes} passes, "
+        f"{b.delay_axis.delay_line().ps_per_mm:.5f} ps/mm, time zero {b.delay_axis.time_zero_mm} mm)",
+        f"shots         {plan.shots_per_point} per point, {plan.total_shots:,} in all"
+        + (f" (incl. {plan.dark_shots} dark)" if plan.dark_shots else ""),
+        f"duration      about {format_duration(plan.estimated_duration_s())} at {b.repetition_rate_hz:g} Hz "
+        f"(moves {format_duration(plan.travel_time_s())})",
+        f"output        {output}",
+    ]
+    return "\n".join(lines)
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    cfg, bench_cfg = _load(args)
+    if cfg.config.scan is None:
+        b = bench_cfg.bench
+        print(f"{cfg.path}: valid bench {b.name!r} (no [scan] section)")
+        return EXIT_OK
+    plan = _plan(cfg, bench_cfg)
+    print(describe_plan(cfg, bench_cfg, plan, cfg.require_scan().output))
+    print("configuration is valid")
+    return EXIT_OK
+
+
+def _summary(ev: ScanEnded, last: PointSaved | None) -> str:
+    text = f"scan {ev.state}" + (f" ({ev.reason})" if ev.reason else "") + f": {ev.points_done} point(s) in {ev.path}"
+    if last is not None:
+        c = last.combined
+        err = float(np.nanmedian(c.delta_od_error)) if np.any(np.isfinite(c.delta_od_error)) else float("nan")
+        text += (f"\nlast point: median error {err:.2e} ΔOD, median noise/floor "
+                 f"{float(np.nanmedian(c.excess_noise)):.2f}, {last.shots_per_s:.0f} shots/s")
+    for p in ev.safe_problems:
+        text += f"\nWARNING: {p}"
+    return text
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    cfg, bench_cfg = _load(args)
+    scan = cfg.require_scan()
+    plan = _plan(cfg, bench_cfg)
+    target = args.output or scan.output
+    check_output(target, cfg.path, "--output" if args.output else "scan.output")
+    output = unique_path(target)
+    seed = scan.seed
+    bench = build_bench(bench_cfg.bench, (bench_cfg.config.simulation or cfg.config.simulation),
+                        realtime=not args.fast, seed=seed)
+    print(describe_plan(cfg, bench_cfg, plan, str(output)), file=sys.stderr)
+    bench.connect()
+    runner = Runner(bench)
+    job = ScanJob(cfg, scan, plan, output, new_scan_id())
+    progress = ProgressPrinter()
+    interrupted = False
+
+    def on_term(signum: int, frame: object) -> None:
+        runner.abort(f"stopped by signal {signal.Signals(signum).name}")
+
+    previous = signal.signal(signal.SIGTERM, on_term)
+    last: PointSaved | None = None
+    try:
+        runner.start(job)
+        while True:
+            try:
+                ev = runner.events.get(timeout=0.5)
+            except queue.Empty:
+                continue
+            except KeyboardInterrupt:
+                if not interrupted:
+                    interrupted = True
+                    progress.finish()
+                    print("interrupted: stopping safely, the file is kept (marked aborted)...", file=sys.stderr)
+                    runner.abort("interrupted by the user (Ctrl-C)")
+                continue
+            if isinstance(ev, ScanStarted):
+                print(f"writing {ev.path}", file=sys.stderr)
+            elif isinstance(ev, PointSaved):
+                last = ev
+                progress.point(ev)
+            elif isinstance(ev, LogEvent):
+                progress.finish()
+                print(f"{ev.level}: {ev.message}", file=sys.stderr)
+            elif isinstance(ev, ScanEnded):
+                progress.finish()
+                print(_summary(ev, last), file=sys.stderr)
+                runner.join(10.0)
+                if ev.state == "complete":
+                    return EXIT_OK
+                return EXIT_INTERRUPTED if interrupted else EXIT_SCAN_FAILED
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+        bench.disconnect()
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="shotpair", description="Acquisition daemon for pump-probe spectrometers.")
+    parser.add_argument("--version", action="version", version=f"shotpair {software_version()}")
+    parser.add_argument("-v", "--verbose", action="store_true", help="log debugging detail to stderr")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    p = sub.add_parser("check", help="validate a configuration and print the scan plan (moves nothing)")
+    p.add_argument("config", help="TOML file with [scan] and/or [bench]")
+    p.add_argument("--bench", help="take the bench from this file instead")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser("run", help="run the scan in a configuration on its bench, here and now")
+    p.add_argument("config", help="TOML file with [scan] (and [bench], [simulation])")
+    p.add_argument("--bench", help="take the bench from this file instead")
+    p.add_argument("--output", "-o", help="output HDF5 file (overrides scan.output)")
+    p.add_argument("--fast", action="store_true", help="simulated bench: run as fast as the computer allows")
+    p.set_defaults(func=cmd_run)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.DEBUG if args.verbose else logging.WARNING,
+                        format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    try:
+        return int(args.func(args))
+    except ShotpairError as exc:
+        print(f"shotpair: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE if isinstance(exc, ConfigError) else EXIT_SCAN_FAILED
+    except KeyboardInterrupt:
+        print("shotpair: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,62 @@
+"""Events the runner emits while it works. Plain dataclasses: the CLI prints them, the stream publishes them.
+
+No I/O here.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+__all__ = ["Event", "ScanStarted", "PointSaved", "ScanEnded", "LogEvent", "StateChanged"]
+
+
+@dataclass(frozen=True)
+class Event:
+    scan_id: str
+
+
+@dataclass(frozen=True)
+class ScanStarted(Event):
+    path: str
+    n_points: int
+    sweeps: int
+    shots_per_point: int
+    estimated_duration_s: float
+
+
+@dataclass(frozen=True)
+class StateChanged(Event):
+    state: str
+
+
+@dataclass(frozen=True)
+class PointSaved(Event):
+    """A delay point of one sweep is in the file (already flushed when this is emitted)."""
+
+    sweep: int
+    position_in_sweep: int
+    index: int
+    delay_ps: float
+    result: Any
+    combined: Any
+    points_done: int
+    points_total: int
+    elapsed_s: float
+    eta_s: float
+    shots_per_s: float
+
+
+@dataclass(frozen=True)
+class ScanEnded(Event):
+    state: str  # "complete" | "aborted"
+    reason: str
+    path: str
+    points_done: int
+    safe_problems: list[str] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class LogEvent(Event):
+    level: str
+    message: str

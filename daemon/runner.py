@@ -1,0 +1,258 @@
+"""The acquisition loop: one worker thread that owns the instruments and the engine.
+
+It talks to the rest only through bounded queues: commands in (abort, pause, resume), events out. The
+loop never waits for whoever reads the events: progress events that find the queue full are dropped
+and counted (the end-of-scan event is always delivered). Persist before publish: a point is flushed
+to HDF5 before its event is put on the queue. Every exit path leaves the bench safe (shutter closed,
+axis stopped) and the file marked complete or aborted with the reason.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import logging
+import queue
+import threading
+import time
+import uuid
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from shotpair.drivers.errors import InstrumentError, ShotpairError
+
+from . import engine
+from .bench import Bench
+from .config import LoadedConfig, ScanSettings
+from .events import Event, LogEvent, PointSaved, ScanEnded, ScanStarted, StateChanged
+from .plan import ScanPlan
+from .states import RunState, RunStateMachine
+from .store import ScanStore, unique_path
+
+__all__ = ["ScanJob", "Runner", "new_scan_id"]
+
+log = logging.getLogger(__name__)
+
+_TRUTH_NOTE = ("Simulation truth, not a measurement: the simulated sample's noise-free ΔOD at the planned delays "
+               "(no scatter, emission or detector effects). Compare the measured delta_od with it.")
+
+
+def new_scan_id() -> str:
+    return _dt.datetime.now().strftime("%Y%m%d-%H%M%S-") + uuid.uuid4().hex[:6]
+
+
+@dataclass(frozen=True)
+class ScanJob:
+    """A validated scan ready to run."""
+
+    config: LoadedConfig
+    scan: ScanSettings
+    plan: ScanPlan
+    output: Path
+    scan_id: str
+
+
+class _Abort(Exception):
+    def __init__(self, reason: str) -> None:
+        self.reason = reason
+
+
+class Runner:
+    """Runs scans on a connected bench in a worker thread."""
+
+    def __init__(self, bench: Bench, *, event_queue_size: int = 1000) -> None:
+        self.bench = bench
+        self.machine = RunStateMachine()
+        self.events: queue.Queue[Event] = queue.Queue(maxsize=event_queue_size)
+        self._commands: queue.Queue[tuple[str, str]] = queue.Queue(maxsize=100)
+        self._thread: threading.Thread | None = None
+        self._lock = threading.Lock()
+        self.dropped_events = 0
+
+    # --------------------------------------------------------------- public, any thread
+    @property
+    def state(self) -> RunState:
+        return self.machine.state
+
+    def start(self, job: ScanJob) -> None:
+        """Start a scan in the worker thread. Raises StateError unless idle."""
+        with self._lock:
+            self.machine.step("start")
+        self._thread = threading.Thread(target=self._run, args=(job,), name="shotpair-runner", daemon=True)
+        self._thread.start()
+
+    def abort(self, reason: str = "aborted by user") -> None:
+        """Ask the running scan to stop; it stops at the next block and marks the file aborted."""
+        self._commands.put(("abort", reason))
+
+    def pause(self) -> None:
+        self._commands.put(("pause", ""))
+
+    def resume(self) -> None:
+        self._commands.put(("resume", ""))
+
+    def join(self, timeout_s: float | None = None) -> bool:
+        """Wait for the worker to finish; True if it has."""
+        if self._thread is None:
+            return True
+        self._thread.join(timeout_s)
+        return not self._thread.is_alive()
+
+    # --------------------------------------------------------------- worker thread
+    def _emit(self, event: Event, *, must: bool = False) -> None:
+        if must:
+            self.events.put(event)
+            return
+        try:
+            self.events.put_nowait(event)
+        except queue.Full:
+            self.dropped_events += 1
+
+    def _step(self, action: str, scan_id: str) -> None:
+        with self._lock:
+            state = self.machine.step(action)
+        self._emit(StateChanged(scan_id, state.value))
+
+    def _poll_commands(self, scan_id: str) -> bool:
+        """Handle pending commands; blocks while paused. Returns True if a pause happened. Raises _Abort."""
+        paused = False
+        while True:
+            try:
+                cmd, reason = self._commands.get(timeout=0.1) if self.state is RunState.PAUSED else self._commands.get_nowait()
+            except queue.Empty:
+                if self.state is RunState.PAUSED:
+                    continue
+                return paused
+            if cmd == "abort":
+                raise _Abort(reason)
+            if cmd == "pause" and self.machine.can("pause"):
+                self.bench.shutter.close()
+                self._step("pause", scan_id)
+                paused = True
+            elif cmd == "resume" and self.machine.can("resume"):
+                self.bench.shutter.open()
+                self._step("resume", scan_id)
+                return paused
+
+    def _run(self, job: ScanJob) -> None:
+        store: ScanStore | None = None
+        state, reason, done = "aborted", "", 0
+        problems: list[str] = []
+        try:
+            store = self._create_store(job)
+            self._emit(ScanStarted(job.scan_id, str(store.path), job.plan.n_points, job.plan.sweeps,
+                                   job.plan.shots_per_point, job.plan.estimated_duration_s()), must=True)
+            dark = self._prepare(job, store)
+            self._step("ready", job.scan_id)
+            done = self._acquire(job, store, dark)
+            self._step("finish", job.scan_id)
+            state = "complete"
+        except _Abort as exc:
+            reason = exc.reason
+            self._step_quietly("abort", job.scan_id)
+        except ShotpairError as exc:
+            reason = f"error: {exc}"
+            self._step_quietly("fail", job.scan_id)
+            self._emit(LogEvent(job.scan_id, "error", str(exc)), must=True)
+        except Exception as exc:  # noqa: BLE001 - a bug must still leave the bench safe and the file closed
+            log.exception("unexpected error in the acquisition loop")
+            reason = f"internal error: {type(exc).__name__}: {exc}"
+            self._step_quietly("fail", job.scan_id)
+            self._emit(LogEvent(job.scan_id, "error", reason), must=True)
+        finally:
+            problems = self.bench.make_safe()
+            if store is not None:
+                for p in problems:
+                    store.log(p)
+                store.finish(state, reason)
+            path = str(store.path) if store is not None else str(job.output)
+            with self._lock:
+                if self.machine.can("stopped"):
+                    self.machine.step("stopped")
+            self._emit(ScanEnded(job.scan_id, state, reason, path, done, problems), must=True)
+
+    def _step_quietly(self, action: str, scan_id: str) -> None:
+        with self._lock:
+            if self.machine.can(action):
+                self.machine.step(action)
+        self._emit(StateChanged(scan_id, self.state.value))
+
+    def _create_store(self, job: ScanJob) -> ScanStore:
+        b = self.bench
+        return ScanStore.create(
+            job.output, scan_id=job.scan_id, title=job.scan.title, delays_ps=job.plan.delays_ps,
+            wavelengths_nm=b.settings.detector.wavelengths_nm(), sweeps=job.plan.sweeps, orders=job.plan.orders,
+            config_text=job.config.text, instruments=b.identities(), extra={"bench_name": b.settings.name})
+
+    def _prepare(self, job: ScanJob, store: ScanStore) -> engine.DarkFrame:
+        b, s = self.bench, self.bench.settings
+        if job.plan.delays_ps.size and b.simulation is not None:
+            store.write_truth(b.simulation.truth_delta_od(job.plan.delays_ps), _TRUTH_NOTE)
+        if s.delay_axis.home_on_connect and not b.delay_axis.is_homed:
+            b.delay_axis.home(timeout_s=s.delay_axis.settle_timeout_s)
+        freq = s.chopper.frequency_hz or s.repetition_rate_hz / 2.0
+        b.chopper.set_frequency_hz(freq)
+        b.chopper.set_phase_deg(s.chopper.phase_deg)
+        if s.chopper.require_lock and not b.chopper.is_locked():
+            raise InstrumentError("not locked to the laser (set require_lock = false to acquire anyway)",
+                                  instrument="chopper")
+        det = s.detector
+        if det.dark_counts is not None:
+            dark = engine.DarkFrame.constant(det.dark_counts, det.pixels)
+            store.write_dark(dark.counts, 0, measured=False)
+        else:
+            b.shutter.close()
+            dark_acc = engine.DarkAccumulator()
+            remaining = job.plan.dark_shots
+            while remaining > 0:
+                self._poll_commands(job.scan_id)
+                block = b.detector.acquire(min(det.block_shots, remaining), timeout_s=self._block_timeout_s(det.block_shots))
+                dark_acc.add(block)
+                remaining -= block.n_shots
+            dark = dark_acc.result()
+            store.write_dark(dark.counts, dark.shots, dark.reference, measured=True)
+        b.shutter.open()
+        return dark
+
+    def _block_timeout_s(self, shots: int) -> float:
+        return 5.0 + 3.0 * shots / self.bench.settings.repetition_rate_hz
+
+    def _acquire(self, job: ScanJob, store: ScanStore, dark: engine.DarkFrame) -> int:
+        b, s, plan = self.bench, self.bench.settings, job.plan
+        settings = engine.EngineSettings(
+            gain_e_per_count=s.detector.gain_e_per_count, read_noise_e=s.detector.read_noise_e,
+            saturation_counts=s.detector.saturation_counts, reject_threshold_mad=job.scan.reject_threshold_mad,
+            use_reference=s.detector.has_reference)
+        per_point: list[list[engine.PointResult]] = [[] for _ in range(plan.n_points)]
+        line = s.delay_axis.delay_line()
+        done, t0, shots_total = 0, time.monotonic(), 0
+        for sweep, order in enumerate(plan.orders):
+            for k, index in enumerate(order):
+                self._poll_commands(job.scan_id)
+                b.delay_axis.move_to_mm(float(plan.positions_mm[index]))
+                readback = b.delay_axis.wait_settled(timeout_s=s.delay_axis.settle_timeout_s)
+                acc = engine.PointAccumulator(dark, settings)
+                got = 0
+                while got < plan.shots_per_point:
+                    if self._poll_commands(job.scan_id):
+                        # Paused inside the point: measure it again from the start, never half-done.
+                        acc, got = engine.PointAccumulator(dark, settings), 0
+                    n = min(s.detector.block_shots, plan.shots_per_point - got)
+                    block = b.detector.acquire(n, timeout_s=self._block_timeout_s(n))
+                    acc.add(block)
+                    got += block.n_shots
+                    if block.n_shots == 0:
+                        raise InstrumentError("delivered an empty block", instrument="detector")
+                result = acc.result()
+                per_point[index].append(result)
+                combined = engine.PointResult.combine(per_point[index])
+                store.write_point(sweep, int(index), result, combined, position_mm=readback,
+                                  delay_readback_ps=float(line.delay_ps(readback)), measured_at_s=time.time())
+                done += 1
+                shots_total += got
+                elapsed = time.monotonic() - t0
+                eta = elapsed / done * (plan.total_points - done)
+                self._emit(PointSaved(job.scan_id, sweep, k, int(index), float(plan.delays_ps[index]), result, combined,
+                                      done, plan.total_points, elapsed, eta, shots_total / max(elapsed, 1e-9)))
+        return done
