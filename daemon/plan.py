@@ -111,10 +111,9 @@ def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<con
         bad = d[(d < low_ps - _SAME_DELAY_PS) | (d > high_ps + _SAME_DELAY_PS)]
         if bad.size:
             raise ConfigError(
-                "delay outside the stage travel",
+                f"{bad.size} delay(s) outside the stage travel, from {bad.min():.6g} to {bad.max():.6g} ps",
                 file=config_path,
                 key_path=f"scan.delays[{i}]",
-                value=float(bad[0]),
                 allowed=(f"{low_ps:.6g} to {high_ps:.6g} ps with travel_mm = {list(bench.delay_axis.travel_mm)}, "
                          f"passes = {line.passes}, time_zero_mm = {line.time_zero_mm}"),
             )
