@@ -199,7 +199,7 @@ class Runner:
                                   instrument="chopper")
         det = s.detector
         if det.dark_counts is not None:
-            dark = engine.DarkFrame.constant(det.dark_counts, det.pixels)
+            dark = engine.DarkFrame.from_counts(np.full(det.pixels, det.dark_counts))
             store.write_dark(dark.counts, 0, measured=False)
         else:
             b.shutter.close()
@@ -210,7 +210,7 @@ class Runner:
                 block = b.detector.acquire(min(det.block_shots, remaining), timeout_s=self._block_timeout_s(det.block_shots))
                 dark_acc.add(block)
                 remaining -= block.n_shots
-            dark = dark_acc.result()
+            dark = dark_acc.frame()
             store.write_dark(dark.counts, dark.shots, dark.reference, measured=True)
         b.shutter.open()
         return dark

@@ -1,8 +1,8 @@
 """Vectorised complementary error functions for numpy, without scipy (a test-only dependency).
 
 Used by the kinetics to convolve exponentials with a Gaussian instrument response. Accuracy: relative
-error below 1.2e-7 for every finite argument (the Chebyshev-type fit of erfc given in Press, Teukolsky,
-Vetterling, Flannery, Numerical Recipes, 2nd ed., section 6.2). This module holds pure functions only.
+error below 1.2e-7 for every finite argument (the Chebyshev-type fit of erfc in Numerical Recipes, 2nd ed.
+(1992), section 6.2; checked against scipy.special in the tests). This module holds pure functions only.
 """
 
 from __future__ import annotations
