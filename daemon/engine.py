@@ -30,6 +30,7 @@ __all__ = [
     "ShotPairs",
     "pair_shots",
     "find_outliers",
+    "robust_center_scale",
     "PointResult",
     "PointAccumulator",
     "DEFAULT_CHUNK_PAIRS",
@@ -37,8 +38,10 @@ __all__ = [
 
 LN10 = math.log(10.0)
 #: Pairs per chunk. Measured with benchmarks/engine.py on the 2-core development machine (L2 512 KiB per
-#: core): 16 and 32 pairs are within a few percent at 1024 px, 64 and more fall off (buffers leave L2).
-DEFAULT_CHUNK_PAIRS = 32
+#: core, 1024 px, shots/s, interleaved medians): 16: 165k, 32: 215k, 64: 278k, 128: 286k, 256: 279k.
+#: Below 64 numpy's per-call overhead dominates; 64 and 128 are equal within the machine's noise, and 64
+#: keeps the five float32 buffers at 256 KiB each.
+DEFAULT_CHUNK_PAIRS = 64
 #: The intensity index used for rejection reads at most this many pixels per shot (every k-th pixel).
 INDEX_PIXELS = 64
 _MAD_TO_SIGMA = 1.4826
@@ -73,8 +76,8 @@ class EngineSettings:
     work_dtype:
         ``"float32"`` (fast; per-pair relative rounding ~1e-7, sums still float64) or ``"float64"``.
     exact_floor:
-        Evaluate the shot-noise σ² of every pair from its own counts (slower) instead of at the
-        chunk-mean counts of each pixel.
+        Evaluate the shot-noise σ² of every pair from its own counts (about half the speed) instead of
+        at the block's mean counts of each pixel.
     """
 
     gain_e_per_count: float = 1.0
@@ -275,7 +278,7 @@ def find_outliers(intensity: np.ndarray, groups: np.ndarray, threshold_mad: floa
 # ------------------------------------------------------------------------------------------ results
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class PointResult:
     """Statistics of one delay point (or of several merged): per-pixel arrays and block-level counters.
 
@@ -434,8 +437,12 @@ class PointAccumulator:
     Per pair the engine computes ``z = (A − B)/(A + B)`` with ``A = S_off·R_on``, ``B = S_on·R_off`` (R = 1
     without reference), so that ``ΔOD = −log10(A⁻¹B) = 2·atanh(z)/ln10``. Where every ``|z| ≤ 0.086`` in a
     chunk, atanh is its series to z⁵ (truncation < 1e-8 in ln, below float32 rounding); otherwise the chunk
-    uses ``log``. The shot-noise σ² of each pair is evaluated at the chunk's mean counts per pixel unless
-    ``exact_floor`` is set (the two differ by the relative intensity variance inside a chunk, ~1e-4).
+    uses ``log``. The shot-noise σ² of each pair is evaluated at the block's mean counts per pixel unless
+    ``exact_floor`` is set: the two differ by the relative variance of the counts inside a block (Jensen),
+    ~1e-4 for 1 % laser noise and N ≥ 1e4 e⁻, 1/N for dim pixels. In four-state mode N is taken from the
+    background-subtracted counts, which slightly underestimates the floor where the background is large.
+    Moments are kept as sums of deviations from a per-pixel shift (the running mean) within a block and
+    merged into the point by Chan's rule once per block.
 
     Raises ConfigError when ``use_reference`` is set but the dark has no reference channel or a block
     carries none; InstrumentReplyError when a block's pixel or reference shape differs from the dark's.
@@ -523,7 +530,7 @@ class PointAccumulator:
         if reference is not None and reference.shape[1] == 1:
             scalar_ref = self._scalar_reference(reference[:, 0], on_idx, off_idx)
             reference = None
-        sums = _BlockSums.start(self._k_shift(), self._dtype, block.pixels)
+        sums = _BlockSums.start(self._k_shift(), block.pixels)
         # one pass over the block's bytes decides whether chunks must look for saturated entries at all
         sums.may_saturate = int(block.counts.max()) >= s.saturation_counts
         steps = (np.diff(on_idx), np.diff(off_idx))
@@ -819,10 +826,9 @@ class _BlockSums:
     may_saturate: bool = True
 
     @classmethod
-    def start(cls, shift: np.ndarray | None, dtype: np.dtype, pixels: int | None = None) -> "_BlockSums":
-        px = pixels if pixels is not None else (shift.shape[0] if shift is not None else 0)
-        z = lambda: np.zeros(px)  # noqa: E731
-        return cls(shift, np.zeros(px, np.int64), z(), z(), z(), z(), z(), z(), z(), [z(), z()], [z(), z()])
+    def start(cls, shift: np.ndarray | None, pixels: int) -> "_BlockSums":
+        z = lambda: np.zeros(pixels)  # noqa: E731
+        return cls(shift, np.zeros(pixels, np.int64), z(), z(), z(), z(), z(), z(), z(), [z(), z()], [z(), z()])
 
 
 def _sigma2_at_mean(total: np.ndarray, n: np.ndarray, a: float, b: float) -> np.ndarray:
