@@ -106,12 +106,18 @@ def cmd_run(args: argparse.Namespace) -> int:
     runner = Runner(bench)
     job = ScanJob(cfg, scan, plan, output, new_scan_id())
     progress = ProgressPrinter()
-    interrupted = False
+    interrupted: list[str] = []
 
-    def on_term(signum: int, frame: object) -> None:
-        runner.abort(f"stopped by signal {signal.Signals(signum).name}")
+    def on_signal(signum: int, frame: object) -> None:
+        # Ask the runner to stop and keep waiting for its end event: the file is then closed properly.
+        name = signal.Signals(signum).name
+        if not interrupted:
+            progress.finish()
+            print("interrupted: stopping safely, the file is kept (marked aborted)...", file=sys.stderr)
+            runner.abort("interrupted by the user (Ctrl-C)" if signum == signal.SIGINT else f"stopped by {name}")
+        interrupted.append(name)
 
-    previous = signal.signal(signal.SIGTERM, on_term)
+    previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
     last: PointSaved | None = None
     try:
         runner.start(job)
@@ -119,13 +125,6 @@ def cmd_run(args: argparse.Namespace) -> int:
             try:
                 ev = runner.events.get(timeout=0.5)
             except queue.Empty:
-                continue
-            except KeyboardInterrupt:
-                if not interrupted:
-                    interrupted = True
-                    progress.finish()
-                    print("interrupted: stopping safely, the file is kept (marked aborted)...", file=sys.stderr)
-                    runner.abort("interrupted by the user (Ctrl-C)")
                 continue
             if isinstance(ev, ScanStarted):
                 print(f"writing {ev.path}", file=sys.stderr)
@@ -143,7 +142,12 @@ def cmd_run(args: argparse.Namespace) -> int:
                     return EXIT_OK
                 return EXIT_INTERRUPTED if interrupted else EXIT_SCAN_FAILED
     finally:
-        signal.signal(signal.SIGTERM, previous)
+        if not runner.join(0.0):
+            # Only reached if the loop above was left by an unexpected error: still close the file.
+            runner.abort("the command stopped unexpectedly")
+            runner.join(30.0)
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
         bench.disconnect()
 
 
