@@ -11,7 +11,6 @@ import logging
 import queue
 import signal
 import sys
-from pathlib import Path
 from typing import Sequence
 
 import numpy as np

@@ -11,16 +11,18 @@ This module must not do I/O, start threads, sleep, log per shot, or know about f
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import NamedTuple
 
 import numpy as np
 
 from shotpair.drivers.base import ShotBlock
-from shotpair.drivers.errors import ConfigError, InstrumentReplyError, ShotpairError
+from shotpair.drivers.errors import ConfigError, InstrumentReplyError
 
-from .welford import PixelStats, chan_merge
+from .dark import DarkAccumulator, DarkFrame, dark_from_blocks
+from .pairing import ShotPairs, find_outliers, pair_shots, robust_center_scale
+from .point_result import PointResult
+from .welford import PixelStats
 
 __all__ = [
     "EngineSettings",
@@ -44,7 +46,6 @@ LN10 = math.log(10.0)
 DEFAULT_CHUNK_PAIRS = 64
 #: The intensity index used for rejection reads at most this many pixels per shot (every k-th pixel).
 INDEX_PIXELS = 64
-_MAD_TO_SIGMA = 1.4826
 #: Largest z² = ((A − B)/(A + B))² in a chunk for which atanh(z) is taken from its series to z³ or to z⁵,
 #: per work dtype. float32: the neglected term (z⁵/5 at |z| ≤ 0.03, z⁷/7 at |z| ≤ 0.086, i.e. |ΔOD| ≲ 0.075)
 #: stays below 5e-9, under float32 rounding of the ratio. float64: below 2e-16, so float64 results agree
@@ -111,293 +112,6 @@ class EngineSettings:
             raise bad("chunk_pairs", self.chunk_pairs, "an integer >= 1")
         if self.work_dtype not in ("float32", "float64"):
             raise bad("work_dtype", self.work_dtype, "'float32' or 'float64'")
-
-
-# --------------------------------------------------------------------------------------------- dark
-
-
-@dataclass(frozen=True)
-class DarkFrame:
-    """Mean counts per pixel with the probe blocked (float64, counts), and of the reference channel."""
-
-    counts: np.ndarray
-    reference: np.ndarray | None = None
-    shots: int = 0
-    std_counts: np.ndarray | None = None
-
-    @classmethod
-    def from_counts(cls, counts: Sequence[float] | np.ndarray, reference: Sequence[float] | np.ndarray | None = None
-                    ) -> "DarkFrame":
-        """A dark given as numbers (from a bench file, or zeros), counts per pixel."""
-        c = np.asarray(counts, dtype=np.float64).reshape(-1)
-        r = None if reference is None else np.asarray(reference, dtype=np.float64).reshape(-1)
-        return cls(counts=c, reference=r)
-
-    @property
-    def pixels(self) -> int:
-        return int(self.counts.shape[0])
-
-
-class DarkAccumulator:
-    """Averages blocks recorded with the shutter closed into a :class:`DarkFrame`, block by block."""
-
-    def __init__(self, chunk_shots: int = 256) -> None:
-        self._chunk = max(1, int(chunk_shots))
-        self._stats: PixelStats | None = None
-        self._ref: PixelStats | None = None
-        self._ref_missing = False
-
-    def add(self, block: ShotBlock) -> None:
-        """Add every shot of ``block`` (pump and probe states are irrelevant with the shutter closed)."""
-        if self._stats is None:
-            self._stats = PixelStats(block.pixels)
-            if block.reference is not None:
-                self._ref = PixelStats(block.reference.shape[1])
-        if block.pixels != self._stats.pixels:
-            raise InstrumentReplyError(f"dark block has {block.pixels} pixels, earlier ones {self._stats.pixels}",
-                                       instrument="detector")
-        for start in range(0, block.n_shots, self._chunk):
-            # float64 before any arithmetic: uint16 would wrap
-            self._stats.update(block.counts[start:start + self._chunk].astype(np.float64))
-            if self._ref is not None and block.reference is not None:
-                self._ref.update(block.reference[start:start + self._chunk].astype(np.float64))
-        if self._ref is not None and block.reference is None:
-            self._ref_missing = True
-
-    def frame(self) -> DarkFrame:
-        """The dark measured so far. Raises ShotpairError if no shot was added."""
-        if self._stats is None or int(self._stats.count[0]) == 0:
-            raise ShotpairError("no dark shots were recorded")
-        ref = None if (self._ref is None or self._ref_missing) else self._ref.mean.copy()
-        return DarkFrame(counts=self._stats.mean.copy(), reference=ref, shots=int(self._stats.count[0]),
-                         std_counts=np.sqrt(self._stats.variance))
-
-
-def dark_from_blocks(blocks: Iterable[ShotBlock]) -> DarkFrame:
-    """Mean counts per pixel (and reference channel) over all shots of ``blocks``; float64 counts."""
-    acc = DarkAccumulator()
-    for block in blocks:
-        acc.add(block)
-    return acc.frame()
-
-
-# ------------------------------------------------------------------------------------ pairs, outliers
-
-
-class ShotPairs(NamedTuple):
-    """Which shots of a block pair up: indices into the block, one pair per position."""
-
-    on_index: np.ndarray
-    off_index: np.ndarray
-    unpaired: int
-    gaps: int
-
-
-def pair_shots(pump_on: np.ndarray, frame_id: np.ndarray, probe_on: np.ndarray | None = None) -> ShotPairs:
-    """Pair each pump-on shot with an adjacent pump-off shot of the same unbroken frame run.
-
-    The candidates are the block's shots in order (only the probe-on shots when ``probe_on`` is given).
-    Two consecutive candidates form a pair when their pump flags differ and no frame-counter gap lies
-    between them (every step of ``frame_id`` from one to the other is exactly 1). Pairs do not overlap:
-    walking left to right, a candidate already used is skipped, which in each stretch of pairable
-    neighbours keeps the 1st, 3rd, 5th... link. A candidate left without a partner is unpaired. Works on
-    irregular flags (two pump-on shots in a row, phase slips): pairing follows the flags, not positions.
-
-    Returns
-    -------
-    ShotPairs
-        ``on_index``/``off_index`` (int64), ``unpaired`` candidates, ``gaps`` (frame steps other than 1).
-    """
-    pump_on = np.asarray(pump_on, dtype=bool)
-    frame_id = np.asarray(frame_id, dtype=np.int64)
-    n = pump_on.shape[0]
-    breaks = np.diff(frame_id) != 1
-    gaps = int(np.count_nonzero(breaks))
-    run = np.zeros(n, dtype=np.int64)
-    np.cumsum(breaks, out=run[1:])
-    cand = np.arange(n, dtype=np.int64) if probe_on is None else np.flatnonzero(np.asarray(probe_on, dtype=bool))
-    if cand.size < 2:
-        empty = np.zeros(0, dtype=np.int64)
-        return ShotPairs(empty, empty, int(cand.size), gaps)
-    flags = pump_on[cand]
-    link = (flags[1:] != flags[:-1]) & (run[cand[1:]] == run[cand[:-1]])
-    pos = np.arange(link.size)
-    starts = link.copy()
-    starts[1:] &= ~link[:-1]
-    run_start = np.maximum.accumulate(np.where(starts, pos, 0))
-    take = np.flatnonzero(link & ((pos - run_start) % 2 == 0))
-    first, second = cand[take], cand[take + 1]
-    first_on = flags[take]
-    on_index = np.where(first_on, first, second)
-    off_index = np.where(first_on, second, first)
-    return ShotPairs(on_index, off_index, int(cand.size - 2 * take.size), gaps)
-
-
-def robust_center_scale(values: np.ndarray) -> tuple[float, float]:
-    """Median and MAD of a 1-D array (by partition: cheaper than np.median for small arrays)."""
-    n = values.size
-    k = n // 2
-    if n % 2:
-        median = float(np.partition(values, k)[k])
-    else:
-        part = np.partition(values, [k - 1, k])
-        median = 0.5 * float(part[k - 1] + part[k])
-    dev = np.abs(values - median)
-    if n % 2:
-        mad = float(np.partition(dev, k)[k])
-    else:
-        part = np.partition(dev, [k - 1, k])
-        mad = 0.5 * float(part[k - 1] + part[k])
-    return median, mad
-
-
-def find_outliers(intensity: np.ndarray, groups: np.ndarray, threshold_mad: float,
-                  noise_per_count: float = 0.0, noise_const: float = 0.0) -> np.ndarray:
-    """Flag shots whose intensity index is far from the median of their group.
-
-    A shot is an outlier when ``|I − median| > threshold_mad · scale``, per group (``groups`` holds a small
-    non-negative integer label per shot), with ``scale = max(1.4826·MAD, sqrt(noise_per_count·median⁺ +
-    noise_const))``: the floor (counts) is the spread expected from shot noise, read noise and
-    quantisation, so a perfectly steady laser does not turn shot noise into outliers.
-    Returns a bool array shaped like ``intensity``.
-    """
-    intensity = np.asarray(intensity, dtype=np.float64)
-    groups = np.asarray(groups)
-    out = np.zeros(intensity.shape, dtype=bool)
-    for label in range(int(groups.max()) + 1 if groups.size else 0):
-        members = groups == label
-        values = intensity[members]
-        if values.size == 0:
-            continue
-        median, mad = robust_center_scale(values)
-        scale = max(_MAD_TO_SIGMA * mad, math.sqrt(noise_per_count * max(median, 0.0) + noise_const))
-        out[members] = np.abs(values - median) > threshold_mad * scale
-    return out
-
-
-# ------------------------------------------------------------------------------------------ results
-
-
-@dataclass(frozen=True, eq=False)
-class PointResult:
-    """Statistics of one delay point (or of several merged): per-pixel arrays and block-level counters.
-
-    Stored fields (per pixel unless noted) are sums and moments that merge exactly; derived quantities are
-    properties. ΔOD is dimensionless (OD units); counts are dark-corrected detector counts.
-
-    Attributes
-    ----------
-    count:
-        Accepted, unmasked pairs per pixel (int64).
-    mean, m2:
-        Running mean of ΔOD and sum of squared deviations (OD²); ``mean`` is 0 where ``count`` is 0.
-    sigma2_sum:
-        Sum over pairs of the shot-noise variance of each pair's ΔOD (OD²).
-    counts_on_sum, counts_off_sum:
-        Sums of dark-corrected counts of the pump-on and pump-off shot of each pair (after the pump-only
-        background in four-state mode).
-    saturated, nonpositive:
-        Pair-pixels masked for saturation (raw ≥ saturation on either shot, or on the reference), and for
-        a dark-corrected value ≤ 0 (either shot or reference), int64; each masked entry counted once,
-        saturation first.
-    shots, pairs, rejected_pairs, unpaired_shots, gaps, blocks, background_missing_blocks:
-        Scalars: shots seen, pairs accepted, pairs rejected as outliers, candidate shots left unpaired,
-        frame-counter gaps inside blocks, blocks added, four-state blocks lacking a probe-off state.
-    """
-
-    count: np.ndarray
-    mean: np.ndarray
-    m2: np.ndarray
-    sigma2_sum: np.ndarray
-    counts_on_sum: np.ndarray
-    counts_off_sum: np.ndarray
-    saturated: np.ndarray
-    nonpositive: np.ndarray
-    shots: int = 0
-    pairs: int = 0
-    rejected_pairs: int = 0
-    unpaired_shots: int = 0
-    gaps: int = 0
-    blocks: int = 0
-    background_missing_blocks: int = 0
-
-    _SCALARS = ("shots", "pairs", "rejected_pairs", "unpaired_shots", "gaps", "blocks",
-                "background_missing_blocks")
-    _SUMS = ("sigma2_sum", "counts_on_sum", "counts_off_sum", "saturated", "nonpositive")
-
-    @classmethod
-    def empty(cls, pixels: int) -> "PointResult":
-        z = np.zeros(pixels, dtype=np.float64)
-        i = np.zeros(pixels, dtype=np.int64)
-        return cls(i.copy(), z.copy(), z.copy(), z.copy(), z.copy(), z.copy(), i.copy(), i.copy())
-
-    @classmethod
-    def combine(cls, results: Sequence["PointResult"]) -> "PointResult":
-        """Merge results (e.g. of one delay point over several sweeps) as if all pairs were accumulated once.
-
-        Raises ShotpairError for an empty sequence or results of different pixel counts.
-        """
-        if not results:
-            raise ShotpairError("nothing to combine")
-        pixels = results[0].pixels
-        if any(r.pixels != pixels for r in results):
-            raise ShotpairError("cannot combine results of different pixel counts")
-        n, mean, m2 = results[0].count, results[0].mean, results[0].m2
-        for r in results[1:]:
-            n, mean, m2 = chan_merge(n, mean, m2, r.count, r.mean, r.m2)
-        sums = {k: np.sum([getattr(r, k) for r in results], axis=0) for k in cls._SUMS}
-        scalars = {k: int(sum(getattr(r, k) for r in results)) for k in cls._SCALARS}
-        return cls(count=n.copy(), mean=mean.copy(), m2=m2.copy(), **sums, **scalars)
-
-    @property
-    def pixels(self) -> int:
-        return int(self.count.shape[0])
-
-    @property
-    def delta_od(self) -> np.ndarray:
-        """Mean ΔOD per pixel (OD); NaN where fewer than two pairs count."""
-        return np.where(self.count >= 2, self.mean, np.nan)
-
-    @property
-    def variance(self) -> np.ndarray:
-        """Sample variance of the per-pair ΔOD (OD²), ``M2/(count−1)``; NaN where count < 2."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.count >= 2, self.m2 / np.maximum(self.count - 1, 1), np.nan)
-
-    @property
-    def delta_od_error(self) -> np.ndarray:
-        """Standard error of the mean ΔOD (OD), ``sqrt(variance / count)``; NaN where count < 2."""
-        return np.sqrt(self.variance / np.maximum(self.count, 1))
-
-    @property
-    def floor(self) -> np.ndarray:
-        """Shot-noise floor of the mean (OD): ``sqrt(mean per-pair σ² / count)``; NaN where count < 2."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            n = np.maximum(self.count, 1)
-            return np.where(self.count >= 2, np.sqrt(self.sigma2_sum / n / n), np.nan)
-
-    @property
-    def excess_noise(self) -> np.ndarray:
-        """Measured standard error over the shot-noise floor (dimensionless); NaN where undefined."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return self.delta_od_error / self.floor
-
-    @property
-    def mean_counts_on(self) -> np.ndarray:
-        """Mean dark-corrected counts of the pump-on shots of counted pairs; NaN where count is 0."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.count > 0, self.counts_on_sum / np.maximum(self.count, 1), np.nan)
-
-    @property
-    def mean_counts_off(self) -> np.ndarray:
-        """Mean dark-corrected counts of the pump-off shots of counted pairs; NaN where count is 0."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.count > 0, self.counts_off_sum / np.maximum(self.count, 1), np.nan)
-
-    @property
-    def masked(self) -> np.ndarray:
-        """Masked pair-pixels per pixel, ``saturated + nonpositive`` (int64)."""
-        return self.saturated + self.nonpositive
 
 
 # ------------------------------------------------------------------------------------- accumulator

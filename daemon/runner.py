@@ -28,7 +28,7 @@ from .config import LoadedConfig, ScanSettings
 from .events import Event, LogEvent, PointSaved, ScanEnded, ScanStarted, StateChanged
 from .plan import ScanPlan
 from .states import RunState, RunStateMachine
-from .store import ScanStore, unique_path
+from .store import ScanStore
 
 __all__ = ["ScanJob", "Runner", "new_scan_id"]
 
