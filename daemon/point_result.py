@@ -13,7 +13,7 @@ import numpy as np
 
 from shotpair.drivers.errors import ShotpairError
 
-from .welford import chan_merge
+from .welford import chan_merge, sample_variance
 
 __all__ = ["PointResult"]
 
@@ -100,8 +100,7 @@ class PointResult:
     @property
     def variance(self) -> np.ndarray:
         """Sample variance of the per-pair ΔOD (OD²), ``M2/(count−1)``; NaN where count < 2."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.count >= 2, self.m2 / np.maximum(self.count - 1, 1), np.nan)
+        return sample_variance(self.count, self.m2)
 
     @property
     def delta_od_error(self) -> np.ndarray:

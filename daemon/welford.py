@@ -12,7 +12,13 @@ import numpy as np
 
 from shotpair.drivers.errors import ShotpairError
 
-__all__ = ["PixelStats", "chan_merge", "chunk_moments"]
+__all__ = ["PixelStats", "chan_merge", "chunk_moments", "sample_variance"]
+
+
+def sample_variance(count: np.ndarray, m2: np.ndarray) -> np.ndarray:
+    """Unbiased sample variance ``M2 / (count - 1)`` per pixel; NaN where count < 2."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count >= 2, m2 / np.maximum(count - 1, 1), np.nan)
 
 
 def chunk_moments(
@@ -124,8 +130,7 @@ class PixelStats:
     @property
     def variance(self) -> np.ndarray:
         """Unbiased sample variance per pixel (units of the samples, squared); NaN where count < 2."""
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return np.where(self.count >= 2, self.m2 / np.maximum(self.count - 1, 1), np.nan)
+        return sample_variance(self.count, self.m2)
 
     @property
     def std_error(self) -> np.ndarray:

@@ -124,3 +124,21 @@ def test_ctrl_c_leaves_a_readable_aborted_file(small_scan, tmp_path):
     d = read(cfg.with_suffix(".h5"))
     assert d["state"] == "aborted" and "Ctrl-C" in d["reason"]
     assert 1 <= int(d["completed"].sum()) < d["completed"].size
+
+
+def test_a_nexus_reader_finds_the_map_with_errors(small_scan):
+    # nexusformat (the NeXus project's Python API) resolves the default plottable data the way NeXus
+    # viewers do: root @default -> NXentry @default -> NXdata @signal/@axes, errors in <signal>_errors.
+    from nexusformat.nexus import nxload
+
+    cfg = small_scan(noise=PURE, name="nexus")
+    run(cfg)
+    root = nxload(str(cfg.with_suffix(".h5")), "r")
+    try:
+        data = root.plottable_data
+        assert data.nxclass == "NXdata" and data.nxsignal.nxname == "delta_od"
+        assert [a.nxname for a in data.nxaxes] == ["delay", "wavelength"]
+        assert data.nxerrors is not None and data.nxerrors.shape == data.nxsignal.shape
+        assert str(data.nxaxes[0].attrs["units"]) == "ps" and str(data.nxaxes[1].attrs["units"]) == "nm"
+    finally:
+        root.nxfile.close()
