@@ -15,7 +15,7 @@ from typing import Sequence
 
 import numpy as np
 
-from shotpair.drivers.errors import ConfigError, ShotpairError
+from shotpair.drivers.errors import ConfigError, ShotpairError, StorageError
 
 from .bench import build_bench
 from .config import LoadedConfig, check_output, load_config
@@ -24,6 +24,7 @@ from .plan import ScanPlan, make_plan
 from .progress import ProgressPrinter, format_duration
 from .runner import Runner, ScanJob, new_scan_id
 from .store import software_version, unique_path
+from .summary import summarise
 
 __all__ = ["main", "build_parser"]
 
@@ -150,6 +151,11 @@ def cmd_run(args: argparse.Namespace) -> int:
         bench.disconnect()
 
 
+def cmd_show(args: argparse.Namespace) -> int:
+    print(summarise(args.file))
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="shotpair", description="Acquisition daemon for pump-probe spectrometers.")
     parser.add_argument("--version", action="version", version=f"shotpair {software_version()}")
@@ -167,6 +173,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--output", "-o", help="output HDF5 file (overrides scan.output)")
     p.add_argument("--fast", action="store_true", help="simulated bench: run as fast as the computer allows")
     p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("show", help="summarise a scan file: state, grid, ΔOD range, errors, rejected pairs")
+    p.add_argument("file", help="an HDF5 file written by shotpair")
+    p.set_defaults(func=cmd_show)
     return parser
 
 
@@ -179,7 +189,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(args.func(args))
     except ShotpairError as exc:
         print(f"shotpair: error: {exc}", file=sys.stderr)
-        return EXIT_USAGE if isinstance(exc, ConfigError) else EXIT_SCAN_FAILED
+        return EXIT_USAGE if isinstance(exc, (ConfigError, StorageError)) else EXIT_SCAN_FAILED
     except KeyboardInterrupt:
         print("shotpair: interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED

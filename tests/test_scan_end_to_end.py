@@ -142,3 +142,20 @@ def test_a_nexus_reader_finds_the_map_with_errors(small_scan):
         assert str(data.nxaxes[0].attrs["units"]) == "ps" and str(data.nxaxes[1].attrs["units"]) == "nm"
     finally:
         root.nxfile.close()
+
+
+def test_show_summarises_a_file(small_scan, capsys, tmp_path):
+    cfg = small_scan(noise=PURE, name="show")
+    d = run(cfg)
+    capsys.readouterr()
+    assert main(["show", str(cfg.with_suffix(".h5"))]) == 0
+    out = capsys.readouterr().out
+    n = d["completed"].size
+    assert "state complete" in out and f"{n} of {n} points measured" in out
+    assert f"{int(d['pairs'].sum()):,} accepted" in out
+    chi2 = float(out.split("stored truth ")[1].split()[0])
+    assert chi2 == pytest.approx(reduced_chi2(d)[0], rel=1e-2)
+    not_h5 = tmp_path / "x.h5"
+    not_h5.write_text("not hdf5")
+    assert main(["show", str(not_h5)]) == 2
+    assert "cannot open as HDF5" in capsys.readouterr().err
