@@ -246,7 +246,10 @@ class PointAccumulator:
             reference = None
         sums = _BlockSums.start(self._k_shift(), block.pixels)
         # one pass over the block's bytes decides whether chunks must look for saturated entries at all
-        sums.may_saturate = int(block.counts.max()) >= s.saturation_counts
+        # (one pass over the block's bytes: the brightest pixel of every shot, so a chunk needs to look for
+        # saturated entries only when one of its shots holds one)
+        row_max = block.counts.max(axis=1)
+        sums.saturated_rows = row_max >= s.saturation_counts if int(row_max.max()) >= s.saturation_counts else None
         steps = (np.diff(on_idx), np.diff(off_idx))
         c = s.chunk_pairs
         for start in range(0, on_idx.size, c):
@@ -375,8 +378,8 @@ class PointAccumulator:
 
         # cheap whole-chunk checks first; the per-entry mask is built only when one of them fires
         suspect = not (w_max < 1.0) or float(sm.min()) <= 0
-        if sums.may_saturate:
-            suspect = suspect or int(u_on.max()) >= sat or int(u_off.max()) >= sat
+        if sums.saturated_rows is not None:
+            suspect = suspect or bool(sums.saturated_rows[on].any() or sums.saturated_rows[off].any())
         if reference is not None:
             assert raw_on is not None and raw_off is not None and s_on is not None and s_off is not None
             assert ra is not None and rb is not None
@@ -537,7 +540,7 @@ class _BlockSums:
     ref_sigma2: np.ndarray
     inv1: list[np.ndarray]
     inv2: list[np.ndarray]
-    may_saturate: bool = True
+    saturated_rows: np.ndarray | None = None
 
     @classmethod
     def start(cls, shift: np.ndarray | None, pixels: int) -> "_BlockSums":
