@@ -156,6 +156,25 @@ def cmd_show(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _floats(text: str | None) -> list[float] | None:
+    if not text:
+        return None
+    try:
+        return [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise ConfigError("expected numbers separated by commas", key_path="command line", value=text) from None
+
+
+def cmd_plot(args: argparse.Namespace) -> int:
+    from .plotfile import plot_file
+
+    target = plot_file(args.file, args.save_png, show=args.show, delays_ps=_floats(args.delays),
+                       wavelengths_nm=_floats(args.wavelengths))
+    if target is not None:
+        print(f"wrote {target}")
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="shotpair", description="Acquisition daemon for pump-probe spectrometers.")
     parser.add_argument("--version", action="version", version=f"shotpair {software_version()}")
@@ -177,6 +196,14 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("show", help="summarise a scan file: state, grid, ΔOD range, errors, rejected pairs")
     p.add_argument("file", help="an HDF5 file written by shotpair")
     p.set_defaults(func=cmd_show)
+
+    p = sub.add_parser("plot", help="draw a scan file: ΔOD map, spectra, kinetics, noise vs floor (needs [plot])")
+    p.add_argument("file", help="an HDF5 file written by shotpair")
+    p.add_argument("--save-png", metavar="PATH", help="image to write (default: the file name with .png)")
+    p.add_argument("--show", action="store_true", help="open a window instead of writing an image")
+    p.add_argument("--delays", metavar="PS,PS,...", help="delays (ps) for the spectra panel")
+    p.add_argument("--wavelengths", metavar="NM,NM,...", help="wavelengths (nm) for the kinetics panel")
+    p.set_defaults(func=cmd_plot)
     return parser
 
 

@@ -159,3 +159,20 @@ def test_show_summarises_a_file(small_scan, capsys, tmp_path):
     not_h5.write_text("not hdf5")
     assert main(["show", str(not_h5)]) == 2
     assert "cannot open as HDF5" in capsys.readouterr().err
+
+
+def test_plot_writes_a_png_with_the_map(small_scan, capsys, tmp_path):
+    import matplotlib.image
+
+    cfg = small_scan(noise=PURE, name="plot")
+    run(cfg)
+    png = tmp_path / "fig.png"
+    assert main(["plot", str(cfg.with_suffix(".h5")), "--save-png", str(png), "--delays", "0.5,100",
+                 "--wavelengths", "470,630"]) == 0
+    img = matplotlib.image.imread(png)
+    assert img.shape[0] > 400 and img.shape[1] > 600
+    r, g, b = img[..., 0], img[..., 1], img[..., 2]
+    # the diverging map shows the bleach in blue and the absorption in red
+    assert ((b - r) > 0.4).sum() > 500 and ((r - b) > 0.4).sum() > 500
+    assert main(["plot", str(tmp_path / "missing.h5")]) == 2
+    assert "cannot open as HDF5" in capsys.readouterr().err
