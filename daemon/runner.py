@@ -224,7 +224,8 @@ class Runner:
             gain_e_per_count=s.detector.gain_e_per_count, read_noise_e=s.detector.read_noise_e,
             saturation_counts=s.detector.saturation_counts, reject_threshold_mad=job.scan.reject_threshold_mad,
             use_reference=s.detector.has_reference)
-        per_point: list[list[engine.PointResult]] = [[] for _ in range(plan.n_points)]
+        # One running merge per grid point (not every sweep's result): memory stays at one result per point.
+        combined_at: list[engine.PointResult | None] = [None] * plan.n_points
         line = s.delay_axis.delay_line()
         done, t0, shots_total = 0, time.monotonic(), 0
         for sweep, order in enumerate(plan.orders):
@@ -245,8 +246,9 @@ class Runner:
                     if block.n_shots == 0:
                         raise InstrumentError("delivered an empty block", instrument="detector")
                 result = acc.result()
-                per_point[index].append(result)
-                combined = engine.PointResult.combine(per_point[index])
+                previous = combined_at[index]
+                combined = result if previous is None else engine.PointResult.combine([previous, result])
+                combined_at[index] = combined
                 store.write_point(sweep, int(index), result, combined, position_mm=readback,
                                   delay_readback_ps=float(line.delay_ps(readback)), measured_at_s=time.time())
                 done += 1
