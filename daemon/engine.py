@@ -36,14 +36,25 @@ __all__ = [
     "PointResult",
     "PointAccumulator",
     "DEFAULT_CHUNK_PAIRS",
+    "CHUNK_ELEMENTS",
+    "default_chunk_pairs",
 ]
 
 LN10 = math.log(10.0)
-#: Pairs per chunk. Measured with benchmarks/engine.py on the 2-core development machine (L2 512 KiB per
-#: core, 1024 px, shots/s, interleaved medians): 16: 165k, 32: 215k, 64: 278k, 128: 286k, 256: 279k.
-#: Below 64 numpy's per-call overhead dominates; 64 and 128 are equal within the machine's noise, and 64
-#: keeps the five float32 buffers at 256 KiB each.
-DEFAULT_CHUNK_PAIRS = 64
+#: Work elements (pairs × pixels) per chunk when ``chunk_pairs`` is not given. Measured with
+#: benchmarks/engine.py on the 2-core development machine (1 MiB L2 per core), shots/s, medians of 9
+#: interleaved runs: 1024 px: 32 pairs 230k, 64: 282k, 96: 317k, 128: 321k, 192: 322k, 256: 302k;
+#: 2048 px: 32: 162k, 64: 170k, 96: 170k, 128: 169k, 192: 143k, 256: 129k. About 128k elements (128 pairs
+#: at 1024 px, 64 at 2048 px) is at or near the best for both.
+CHUNK_ELEMENTS = 131_072
+
+
+def default_chunk_pairs(pixels: int) -> int:
+    """Pairs per chunk for ``pixels`` pixels: about CHUNK_ELEMENTS work elements, 16 to 512 pairs."""
+    return max(16, min(512, CHUNK_ELEMENTS // max(pixels, 1)))
+
+
+DEFAULT_CHUNK_PAIRS = default_chunk_pairs(1024)
 #: The intensity index used for rejection reads at most this many pixels per shot (every k-th pixel).
 INDEX_PIXELS = 64
 #: Largest z² = ((A − B)/(A + B))² in a chunk for which atanh(z) is taken from its series to z³ or to z⁵,
@@ -73,7 +84,8 @@ class EngineSettings:
     reference_gain_e_per_count, reference_read_noise_e:
         The reference detector's constants; None means the same as the sample detector's.
     chunk_pairs:
-        Pairs processed per vectorised chunk (≥ 1); a cache-size trade-off, see DEFAULT_CHUNK_PAIRS.
+        Pairs processed per vectorised chunk (≥ 1), or None for :func:`default_chunk_pairs` of the pixel
+        count; a cache-size trade-off, see CHUNK_ELEMENTS.
     work_dtype:
         ``"float32"`` (fast; per-pair relative rounding ~1e-7, sums still float64) or ``"float64"``.
     exact_floor:
@@ -88,7 +100,7 @@ class EngineSettings:
     use_reference: bool = False
     reference_gain_e_per_count: float | None = None
     reference_read_noise_e: float | None = None
-    chunk_pairs: int = DEFAULT_CHUNK_PAIRS
+    chunk_pairs: int | None = None
     work_dtype: str = "float32"
     exact_floor: bool = False
 
@@ -108,8 +120,9 @@ class EngineSettings:
             raise bad("saturation_counts", self.saturation_counts, "an integer in 1..65536")
         if self.reject_threshold_mad is not None and not (self.reject_threshold_mad > 0):
             raise bad("reject_threshold_mad", self.reject_threshold_mad, "a number > 0, or None to switch off")
-        if not (isinstance(self.chunk_pairs, (int, np.integer)) and self.chunk_pairs >= 1):
-            raise bad("chunk_pairs", self.chunk_pairs, "an integer >= 1")
+        if self.chunk_pairs is not None and not (isinstance(self.chunk_pairs, (int, np.integer))
+                                                 and self.chunk_pairs >= 1):
+            raise bad("chunk_pairs", self.chunk_pairs, "an integer >= 1, or None for the default")
         if self.work_dtype not in ("float32", "float64"):
             raise bad("work_dtype", self.work_dtype, "'float32' or 'float64'")
 
@@ -187,7 +200,7 @@ class PointAccumulator:
         self._b_ref = (noise_r / gain_r) ** 2 / LN10**2
         self._stats = PixelStats(px)
         self._t = _Totals(np.zeros(px, np.int64), np.zeros(px, np.int64), np.zeros(px), np.zeros(px), np.zeros(px))
-        c = s.chunk_pairs
+        c = self._chunk_pairs = s.chunk_pairs or default_chunk_pairs(px)
         self._u = [np.empty((c, px), np.uint16) for _ in range(2)]
         self._f = [np.empty((c, px), self._dtype) for _ in range(5)]
 
@@ -251,7 +264,7 @@ class PointAccumulator:
         row_max = block.counts.max(axis=1)
         sums.saturated_rows = row_max >= s.saturation_counts if int(row_max.max()) >= s.saturation_counts else None
         steps = (np.diff(on_idx), np.diff(off_idx))
-        c = s.chunk_pairs
+        c = self._chunk_pairs
         for start in range(0, on_idx.size, c):
             stop = start + c
             ref_part = None if scalar_ref is None else _ScalarReference(*(a[start:stop] for a in scalar_ref))
@@ -300,7 +313,7 @@ class PointAccumulator:
 
     def _row_mean(self, counts: np.ndarray, rows: np.ndarray) -> np.ndarray:
         total = np.zeros(counts.shape[1], dtype=np.float64)
-        c = self.settings.chunk_pairs * 2
+        c = self._chunk_pairs * 2
         for start in range(0, rows.size, c):
             total += np.add.reduce(counts[rows[start:start + c]], axis=0, dtype=np.float64)
         return total / rows.size
