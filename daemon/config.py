@@ -324,7 +324,14 @@ class ConfigProblems(ConfigError):
 
 def check_output(output: str, config_path: str, key_path: str = "scan.output") -> None:
     """Check that an output file could be created: its nearest existing folder must be writable."""
-    target = Path(output).expanduser()
+    if "\x00" in output:
+        raise ConfigError("a file name cannot contain a NUL character", file=config_path, key_path=key_path,
+                          value=output)
+    try:
+        target = Path(output).expanduser()
+    except RuntimeError as exc:  # "~user" that does not exist
+        raise ConfigError(f"cannot expand the path ({exc})", file=config_path, key_path=key_path,
+                          value=output) from None
     if target.exists() and target.is_dir():
         raise ConfigError("output is a folder, not a file", file=config_path, key_path=key_path, value=output,
                           allowed="a path to an .h5 file")

@@ -97,6 +97,16 @@ def test_output_under_a_file_is_refused(tmp_path, capsys):
     assert "scan.output" in err and "not writable" in err
 
 
+@pytest.mark.parametrize("output, message", [("a\x00b.h5", "NUL"), ("~no-such-user-here/x.h5", "cannot expand")])
+def test_impossible_output_paths(output, message):
+    from shotpair.daemon.config import parse_config
+
+    with pytest.raises(ConfigError) as info:
+        parse_config({"scan": {"shots_per_point": 10, "output": output,
+                               "delays": [{"kind": "list", "delays_ps": [0.0]}]}}, "f.toml")
+    assert "scan.output" in str(info.value) and message in str(info.value)
+
+
 def test_several_problems_reported_together(tmp_path):
     p = write(tmp_path, GOOD.replace("passes = 4", "passes = 0").replace("shots_per_point = 100", "shots_per_point = 1"))
     with pytest.raises(ConfigError) as info:
@@ -139,3 +149,32 @@ def test_shipped_configs_are_valid(capsys):
     for path in sorted((REPO / "configs").glob("*.toml")):
         cfg = load_config(path)
         assert cfg.config.bench is not None or cfg.config.scan is not None, path
+
+
+# --- fuzz invariant (the h11 habit): whatever the document, only ConfigError, ever -------------------
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from shotpair.daemon.config import parse_config  # noqa: E402
+
+_scalars = st.one_of(st.none(), st.booleans(), st.integers(-10**6, 10**6), st.floats(allow_nan=True),
+                     st.text(max_size=8))
+_values = st.recursive(_scalars, lambda inner: st.one_of(st.lists(inner, max_size=4),
+                                                         st.dictionaries(st.text(max_size=6), inner, max_size=4)),
+                       max_leaves=12)
+_keys = st.sampled_from(["bench", "scan", "simulation", "shots_per_point", "delays", "detector", "pixels",
+                         "delay_axis", "travel_mm", "kind", "start_ps", "stop_ps", "step_ps", "output", "noise"])
+_documents = st.recursive(st.dictionaries(_keys, _values, max_size=4),
+                          lambda inner: st.dictionaries(_keys, st.one_of(_values, inner), max_size=4), max_leaves=20)
+
+
+@settings(max_examples=150, deadline=None)
+@given(_documents)
+def test_any_document_gives_a_config_or_a_config_error(doc):
+    try:
+        loaded = parse_config(doc, "fuzz.toml")
+    except ConfigError as exc:
+        assert str(exc).startswith("fuzz.toml") or "problems in the configuration" in str(exc)
+    else:
+        assert loaded.bench is not None
