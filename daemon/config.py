@@ -54,7 +54,7 @@ class DelayAxisSettings(_Strict):
     delayed_beam: Literal["probe", "pump"] = Field("probe", description="Which beam runs over the stage.")
     medium: Literal["air", "vacuum"] = Field("air", description="Medium of the delay line (air: Ciddor 1996 group index).")
     centre_wavelength_nm: float = Field(800.0, gt=200.0, lt=2000.0, description="Wavelength of the beam on the stage, for the air group index, nm.")
-    home_on_connect: bool = Field(True, description="Home the stage when the bench connects.")
+    home_before_scan: bool = Field(True, description="Home the stage at the start of a scan when it does not know its position.")
     velocity_mm_per_s: float = Field(50.0, gt=0.0, description="Typical speed, used only to estimate scan durations, mm/s.")
     settle_timeout_s: float = Field(30.0, gt=0.0, description="Longest wait for a move to finish and settle, s.")
 

@@ -189,7 +189,7 @@ class Runner:
         b, s = self.bench, self.bench.settings
         if job.plan.delays_ps.size and b.simulation is not None:
             store.write_truth(b.simulation.truth_delta_od(job.plan.delays_ps), _TRUTH_NOTE)
-        if s.delay_axis.home_on_connect and not b.delay_axis.is_homed:
+        if s.delay_axis.home_before_scan and not b.delay_axis.is_homed:
             b.delay_axis.home(timeout_s=s.delay_axis.settle_timeout_s)
         freq = s.chopper.frequency_hz or s.repetition_rate_hz / 2.0
         b.chopper.set_frequency_hz(freq)
