@@ -7,6 +7,7 @@ scipy.constants.c; ΔOD against the IUPAC absorbance definition.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 import tomllib
@@ -32,18 +33,7 @@ QUANTISATION_VAR = 1.0 / 12.0  # variance of rounding to whole counts (uniform e
 
 
 def _calibration(pixels: int = 256, **changes: Any) -> BenchCalibration:
-    values: dict[str, Any] = dict(
-        pixels=pixels,
-        wavelengths_nm=np.linspace(420.0, 720.0, pixels),
-        repetition_rate_hz=1000.0,
-        gain_e_per_count=4.0,
-        read_noise_e=50.0,
-        dark_counts=1000.0,
-        delay_line=DelayLine(passes=2, time_zero_mm=10.0),
-        travel_mm=(0.0, 250.0),
-    )
-    values.update(changes)
-    return BenchCalibration(**values)
+    return dataclasses.replace(BenchCalibration.demo(pixels=pixels), **changes)
 
 
 @pytest.fixture
