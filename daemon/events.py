@@ -8,7 +8,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Any
 
-__all__ = ["Event", "ScanStarted", "PointSaved", "ScanEnded", "LogEvent", "StateChanged"]
+__all__ = ["Event", "ScanStarted", "PointSaved", "ScanEnded", "LogEvent", "StateChanged", "BlockProgress", "SweepDone",
+           "MoveDone"]
 
 
 @dataclass(frozen=True)
@@ -60,3 +61,35 @@ class ScanEnded(Event):
 class LogEvent(Event):
     level: str
     message: str
+
+
+@dataclass(frozen=True)
+class BlockProgress(Event):
+    """The live partial average of the point being measured (at most every ``block_interval_s``)."""
+
+    sweep: int
+    index: int
+    delay_ps: float
+    shots_done: int
+    shots_target: int
+    result: Any
+
+
+@dataclass(frozen=True)
+class SweepDone(Event):
+    """A sweep has finished; ``delta_od``/``delta_od_error`` [n, p] average all finished sweeps."""
+
+    sweep: int
+    sweeps: int
+    delta_od: Any
+    delta_od_error: Any
+    pairs: Any
+
+
+@dataclass(frozen=True)
+class MoveDone(Event):
+    """An alignment move (while idle) has ended; ``error`` is empty on success."""
+
+    delay_ps: float
+    position_mm: float
+    error: str = ""

@@ -20,12 +20,13 @@ from pathlib import Path
 
 import numpy as np
 
-from shotpair.drivers.errors import InstrumentError, ShotpairError
+from shotpair.drivers.errors import InstrumentError, LimitError, ShotpairError
 
 from . import engine
 from .bench import Bench
 from .config import LoadedConfig, ScanSettings
-from .events import Event, LogEvent, PointSaved, ScanEnded, ScanStarted, StateChanged
+from .events import (BlockProgress, Event, LogEvent, MoveDone, PointSaved, ScanEnded, ScanStarted, StateChanged,
+                     SweepDone)
 from .plan import ScanPlan
 from .states import RunState, RunStateMachine
 from .store import ScanStore
@@ -53,21 +54,40 @@ class ScanJob:
     scan_id: str
 
 
+def _sweep_event(scan_id: str, sweep: int, sweeps: int, combined: list["engine.PointResult | None"],
+                 pixels: int) -> SweepDone:
+    n = len(combined)
+    dod = np.full((n, pixels), np.nan)
+    err = np.full((n, pixels), np.nan)
+    pairs = np.zeros(n, dtype=np.int64)
+    for i, r in enumerate(combined):
+        if r is not None:
+            dod[i], err[i], pairs[i] = r.delta_od, r.delta_od_error, r.pairs
+    return SweepDone(scan_id, sweep, sweeps, dod, err, pairs)
+
+
 class _Abort(Exception):
     def __init__(self, reason: str) -> None:
         self.reason = reason
 
 
 class Runner:
-    """Runs scans on a connected bench in a worker thread."""
+    """Runs scans (and alignment moves while idle) on a connected bench in one worker thread.
 
-    def __init__(self, bench: Bench, *, event_queue_size: int = 1000) -> None:
+    ``block_interval_s`` is the shortest time between two BlockProgress events of the live partial average.
+    """
+
+    def __init__(self, bench: Bench, *, event_queue_size: int = 1000, block_interval_s: float = 0.1) -> None:
         self.bench = bench
         self.machine = RunStateMachine()
         self.events: queue.Queue[Event] = queue.Queue(maxsize=event_queue_size)
+        self.block_interval_s = block_interval_s
         self._commands: queue.Queue[tuple[str, str]] = queue.Queue(maxsize=100)
+        self._jobs: queue.Queue[tuple[str, object]] = queue.Queue()
         self._thread: threading.Thread | None = None
         self._lock = threading.Lock()
+        self._done = threading.Condition(self._lock)
+        self._working = False
         self.dropped_events = 0
 
     # --------------------------------------------------------------- public, any thread
@@ -75,12 +95,47 @@ class Runner:
     def state(self) -> RunState:
         return self.machine.state
 
+    def _ensure_worker(self) -> None:
+        if self._thread is None or not self._thread.is_alive():
+            self._thread = threading.Thread(target=self._work, name="shotpair-runner", daemon=True)
+            self._thread.start()
+
     def start(self, job: ScanJob) -> None:
         """Start a scan in the worker thread. Raises StateError unless idle."""
         with self._lock:
             self.machine.step("start")
-        self._thread = threading.Thread(target=self._run, args=(job,), name="shotpair-runner", daemon=True)
-        self._thread.start()
+            self._working = True
+        self._ensure_worker()
+        self._jobs.put(("scan", job))
+
+    def move(self, delay_ps: float) -> float:
+        """Start an alignment move to ``delay_ps`` while idle; returns the target position in mm.
+
+        Raises StateError unless idle, LimitError if the delay lies outside the stage travel.
+        """
+        s = self.bench.settings.delay_axis
+        line = s.delay_line()
+        position = float(line.position_mm(float(delay_ps)))
+        lo, hi = s.travel_mm
+        if not lo <= position <= hi:
+            low_ps, high_ps = line.delay_range_ps(s.travel_mm)
+            raise LimitError("delay outside the stage travel", instrument="delay_axis", value=float(delay_ps),
+                             low=low_ps, high=high_ps)
+        with self._lock:
+            self.machine.step("move")
+            self._working = True
+        self._ensure_worker()
+        self._jobs.put(("move", float(delay_ps)))
+        return position
+
+    def close(self, timeout_s: float = 30.0) -> bool:
+        """Abort what runs, stop the worker thread and wait for it; True if it stopped in time."""
+        if self._thread is None:
+            return True
+        self.abort("the daemon is shutting down")
+        self._jobs.put(("stop", None))
+        self._thread.join(timeout_s)
+        return not self._thread.is_alive()
 
     def abort(self, reason: str = "aborted by user") -> None:
         """Ask the running scan to stop; it stops at the next block and marks the file aborted."""
@@ -93,11 +148,9 @@ class Runner:
         self._commands.put(("resume", ""))
 
     def join(self, timeout_s: float | None = None) -> bool:
-        """Wait for the worker to finish; True if it has."""
-        if self._thread is None:
-            return True
-        self._thread.join(timeout_s)
-        return not self._thread.is_alive()
+        """Wait until the worker has finished its scan or move; True if it has (or had nothing to do)."""
+        with self._done:
+            return self._done.wait_for(lambda: not self._working, timeout=timeout_s)
 
     # --------------------------------------------------------------- worker thread
     def _emit(self, event: Event, *, must: bool = False) -> None:
@@ -134,6 +187,41 @@ class Runner:
                 self.bench.shutter.open()
                 self._step("resume", scan_id)
                 return paused
+
+    def _work(self) -> None:
+        while True:
+            kind, item = self._jobs.get()
+            if kind == "stop":
+                return
+            try:
+                if kind == "scan":
+                    self._run(item)  # type: ignore[arg-type]
+                elif kind == "move":
+                    self._move(float(item))  # type: ignore[arg-type]
+            finally:
+                with self._done:
+                    self._working = False
+                    self._done.notify_all()
+
+    def _move(self, delay_ps: float) -> None:
+        b = self.bench
+        s = b.settings.delay_axis
+        line = s.delay_line()
+        error, readback = "", float("nan")
+        try:
+            if s.home_before_scan and not b.delay_axis.is_homed:
+                b.delay_axis.home(timeout_s=s.settle_timeout_s)
+            b.delay_axis.move_to_mm(float(line.position_mm(delay_ps)))
+            readback = b.delay_axis.wait_settled(timeout_s=s.settle_timeout_s)
+        except ShotpairError as exc:
+            error = str(exc)
+            b.make_safe()
+        finally:
+            with self._lock:
+                if self.machine.can("moved"):
+                    self.machine.step("moved")
+        self._emit(MoveDone("", delay_ps, readback, error), must=True)
+        self._emit(StateChanged("", self.state.value))
 
     def _run(self, job: ScanJob) -> None:
         store: ScanStore | None = None
@@ -235,6 +323,7 @@ class Runner:
                 readback = b.delay_axis.wait_settled(timeout_s=s.delay_axis.settle_timeout_s)
                 acc = engine.PointAccumulator(dark, settings)
                 got = 0
+                last_live = time.monotonic()
                 while got < plan.shots_per_point:
                     if self._poll_commands(job.scan_id):
                         # Paused inside the point: measure it again from the start, never half-done.
@@ -245,6 +334,11 @@ class Runner:
                     got += block.n_shots
                     if block.n_shots == 0:
                         raise InstrumentError("delivered an empty block", instrument="detector")
+                    now = time.monotonic()
+                    if now - last_live >= self.block_interval_s and got < plan.shots_per_point:
+                        last_live = now
+                        self._emit(BlockProgress(job.scan_id, sweep, int(index), float(plan.delays_ps[index]), got,
+                                                 plan.shots_per_point, acc.result()))
                 result = acc.result()
                 previous = combined_at[index]
                 combined = result if previous is None else engine.PointResult.combine([previous, result])
@@ -257,4 +351,5 @@ class Runner:
                 eta = elapsed / done * (plan.total_points - done)
                 self._emit(PointSaved(job.scan_id, sweep, k, int(index), float(plan.delays_ps[index]), result, combined,
                                       done, plan.total_points, elapsed, eta, shots_total / max(elapsed, 1e-9)))
+            self._emit(_sweep_event(job.scan_id, sweep, plan.sweeps, combined_at, b.settings.detector.pixels))
         return done

@@ -16,6 +16,7 @@ __all__ = ["RunState", "TRANSITIONS", "RunStateMachine", "transition_table_markd
 
 class RunState(str, enum.Enum):
     IDLE = "idle"            # bench connected, no scan
+    MOVING = "moving"        # an alignment move requested while idle
     PREPARING = "preparing"  # scan accepted: homing, dark, opening the shutter
     ACQUIRING = "acquiring"  # moving and reading shots
     PAUSED = "paused"        # between points, shutter closed, waiting for resume
@@ -23,9 +24,11 @@ class RunState(str, enum.Enum):
 
 
 #: (state, action) -> next state. Actions come from users (start, pause, resume, abort) or from the
-#: runner itself (ready, finish, fail, stopped).
+#: runner itself (ready, finish, fail, stopped, moved).
 TRANSITIONS: dict[tuple[RunState, str], RunState] = {
     (RunState.IDLE, "start"): RunState.PREPARING,
+    (RunState.IDLE, "move"): RunState.MOVING,
+    (RunState.MOVING, "moved"): RunState.IDLE,
     (RunState.PREPARING, "ready"): RunState.ACQUIRING,
     (RunState.PREPARING, "abort"): RunState.STOPPING,
     (RunState.PREPARING, "fail"): RunState.STOPPING,

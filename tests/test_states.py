@@ -29,7 +29,7 @@ def test_illegal_steps_raise_and_keep_the_state(state):
 
 
 def test_pause_while_idle_names_what_is_allowed():
-    with pytest.raises(StateError, match="cannot pause while idle: allowed now: start"):
+    with pytest.raises(StateError, match="cannot pause while idle: allowed now: move, start"):
         RunStateMachine().step("pause")
 
 

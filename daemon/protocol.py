@@ -1,0 +1,198 @@
+"""The wire format shared by the daemon and its clients: encode and decode messages, no sockets.
+
+Data stream (PUB): multipart ``[topic, header, array frames...]``. The topic is ASCII; the header is a
+JSON object with at least ``v`` (protocol version), ``seq`` (+1 per message on the socket), ``scan_id``,
+``kind`` (= topic), ``time`` (Unix s) and ``arrays``: a list of ``{name, dtype, shape}`` describing the
+raw frames that follow, in order. Arrays are C-contiguous, little-endian (dtype strings like ``"<f8"``).
+Control (ROUTER/DEALER): a request is one frame, a JSON object with ``cmd`` and an optional ``id``; a
+reply is ``[header, array frames...]`` with ``ok`` and the same ``arrays`` convention. docs/protocol.md
+is the full specification; keep the two in step. Pickle never crosses the wire.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from shotpair.drivers.errors import ProtocolError
+
+__all__ = [
+    "PROTOCOL_VERSION",
+    "TOPICS",
+    "ERROR_CODES",
+    "Message",
+    "encode_arrays",
+    "decode_arrays",
+    "encode_data",
+    "decode_data",
+    "encode_request",
+    "decode_request",
+    "encode_reply",
+    "encode_error",
+    "decode_reply",
+]
+
+#: Bumped when a message changes incompatibly; new fields may be added without a bump.
+PROTOCOL_VERSION = 1
+TOPICS = ("status", "block", "point", "sweep", "scan", "log")
+ERROR_CODES = ("bad_request", "unknown_command", "bad_argument", "illegal_state", "config_error",
+               "instrument_error", "storage_error", "internal_error")
+_ALLOWED_KINDS = "biuf"  # bool, signed, unsigned, float: no objects, no strings on the wire
+MAX_HEADER_BYTES = 1 << 20
+
+
+@dataclass(frozen=True)
+class Message:
+    """A decoded message: its topic (data stream) or None (control reply), header and named arrays."""
+
+    topic: str | None
+    header: dict[str, Any]
+    arrays: dict[str, np.ndarray] = field(default_factory=dict)
+
+    def __getitem__(self, key: str) -> Any:
+        return self.header[key]
+
+    def get(self, key: str, default: Any = None) -> Any:
+        return self.header.get(key, default)
+
+
+def _jsonable(value: Any) -> Any:
+    """JSON-safe copy: numpy scalars to Python, NaN/inf to None (JSON has no NaN)."""
+    if isinstance(value, Mapping):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def _dumps(obj: Mapping[str, Any]) -> bytes:
+    return json.dumps(_jsonable(obj), separators=(",", ":"), allow_nan=False).encode("utf-8")
+
+
+def encode_arrays(arrays: Mapping[str, np.ndarray]) -> tuple[list[dict[str, Any]], list[bytes | memoryview]]:
+    """Descriptions and little-endian, C-contiguous buffers of named arrays, in order."""
+    specs: list[dict[str, Any]] = []
+    frames: list[bytes | memoryview] = []
+    for name, arr in arrays.items():
+        a = np.asarray(arr)
+        if a.dtype.kind not in _ALLOWED_KINDS:
+            raise ProtocolError(f"array {name!r} has dtype {a.dtype}, not a plain number type", code="internal_error")
+        a = np.ascontiguousarray(a, dtype=a.dtype.newbyteorder("<") if a.dtype.byteorder == ">" else a.dtype)
+        specs.append({"name": str(name), "dtype": a.dtype.str, "shape": list(a.shape)})
+        frames.append(memoryview(a).cast("B") if a.size else b"")
+    return specs, frames
+
+
+def decode_arrays(specs: Any, frames: Sequence[bytes | memoryview]) -> dict[str, np.ndarray]:
+    """Arrays from their descriptions and frames. Raises ProtocolError if they do not match."""
+    if not isinstance(specs, list) or len(specs) != len(frames):
+        raise ProtocolError(f"header lists {len(specs) if isinstance(specs, list) else '?'} arrays, "
+                            f"{len(frames)} frames follow")
+    out: dict[str, np.ndarray] = {}
+    for spec, frame in zip(specs, frames):
+        try:
+            name, dtype, shape = spec["name"], np.dtype(spec["dtype"]), tuple(int(s) for s in spec["shape"])
+        except (KeyError, TypeError, ValueError) as exc:
+            raise ProtocolError(f"bad array description {spec!r}: {exc}") from None
+        if dtype.kind not in _ALLOWED_KINDS or any(s < 0 for s in shape):
+            raise ProtocolError(f"array {name!r}: dtype {dtype} or shape {shape} not allowed")
+        buf = memoryview(frame).cast("B")
+        expected = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+        if buf.nbytes != expected:
+            raise ProtocolError(f"array {name!r}: {buf.nbytes} bytes for shape {shape} {dtype.str} ({expected})")
+        out[str(name)] = np.frombuffer(buf, dtype=dtype).reshape(shape)
+    return out
+
+
+def _header(raw: bytes | memoryview) -> dict[str, Any]:
+    data = bytes(raw)
+    if len(data) > MAX_HEADER_BYTES:
+        raise ProtocolError(f"header of {len(data)} bytes is larger than {MAX_HEADER_BYTES}")
+    try:
+        obj = json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ProtocolError(f"header is not UTF-8 JSON: {exc}") from None
+    if not isinstance(obj, dict):
+        raise ProtocolError("header is not a JSON object")
+    return obj
+
+
+def encode_data(topic: str, seq: int, scan_id: str | None, time_s: float, fields: Mapping[str, Any] | None = None,
+                arrays: Mapping[str, np.ndarray] | None = None) -> list[bytes | memoryview]:
+    """Frames of one data-stream message."""
+    if topic not in TOPICS:
+        raise ProtocolError(f"unknown topic {topic!r}", code="internal_error")
+    specs, frames = encode_arrays(arrays or {})
+    header = {"v": PROTOCOL_VERSION, "seq": int(seq), "scan_id": scan_id, "kind": topic, "time": float(time_s),
+              **(fields or {}), "arrays": specs}
+    return [topic.encode("ascii"), _dumps(header), *frames]
+
+
+def decode_data(frames: Sequence[bytes | memoryview]) -> Message:
+    """A data-stream message from its frames. Raises ProtocolError if malformed or of another version."""
+    if len(frames) < 2:
+        raise ProtocolError(f"a data message has at least 2 frames, got {len(frames)}")
+    try:
+        topic = bytes(frames[0]).decode("ascii")
+    except UnicodeDecodeError:
+        raise ProtocolError("topic is not ASCII") from None
+    header = _header(frames[1])
+    if header.get("v") != PROTOCOL_VERSION:
+        raise ProtocolError(f"protocol version {header.get('v')!r}, this client speaks {PROTOCOL_VERSION}")
+    for key in ("seq", "kind", "arrays"):
+        if key not in header:
+            raise ProtocolError(f"header has no {key!r}")
+    return Message(topic, header, decode_arrays(header["arrays"], frames[2:]))
+
+
+def encode_request(cmd: str, request_id: Any = None, **args: Any) -> list[bytes]:
+    """The one frame of a control request."""
+    body = {"cmd": cmd, **args}
+    if request_id is not None:
+        body["id"] = request_id
+    return [_dumps(body)]
+
+
+def decode_request(frames: Sequence[bytes | memoryview]) -> dict[str, Any]:
+    """A control request. Raises ProtocolError (code bad_request) if it is not one JSON object with ``cmd``."""
+    if len(frames) != 1:
+        raise ProtocolError(f"a request is one frame, got {len(frames)}")
+    body = _header(frames[0])
+    if not isinstance(body.get("cmd"), str):
+        raise ProtocolError("request has no string 'cmd'")
+    return body
+
+
+def encode_reply(request_id: Any = None, arrays: Mapping[str, np.ndarray] | None = None,
+                 **fields: Any) -> list[bytes | memoryview]:
+    """Frames of a successful reply: ``ok`` true, the request's ``id``, fields and arrays."""
+    specs, frames = encode_arrays(arrays or {})
+    header = {"v": PROTOCOL_VERSION, "ok": True, "id": request_id, **fields, "arrays": specs}
+    return [_dumps(header), *frames]
+
+
+def encode_error(code: str, message: str, request_id: Any = None, **fields: Any) -> list[bytes]:
+    """The frame of an error reply: ``ok`` false, ``error`` {code, message}."""
+    if code not in ERROR_CODES:
+        code = "internal_error"
+    header = {"v": PROTOCOL_VERSION, "ok": False, "id": request_id, "error": {"code": code, "message": message},
+              **fields, "arrays": []}
+    return [_dumps(header)]
+
+
+def decode_reply(frames: Sequence[bytes | memoryview]) -> Message:
+    """A control reply. Raises ProtocolError if malformed."""
+    if not frames:
+        raise ProtocolError("empty reply")
+    header = _header(frames[0])
+    if "ok" not in header:
+        raise ProtocolError("reply has no 'ok'")
+    return Message(None, header, decode_arrays(header.get("arrays", []), frames[1:]))
