@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import argparse
 import logging
-import queue
 import signal
 import sys
 from typing import Sequence
@@ -22,7 +21,9 @@ from .config import LoadedConfig, check_output, load_config
 from .events import LogEvent, PointSaved, ScanEnded, ScanStarted
 from .plan import ScanPlan, make_plan
 from .progress import ProgressPrinter, format_duration
-from .runner import Runner, ScanJob, new_scan_id
+from .remote import add_remote_commands
+from .runner import ScanJob, new_scan_id
+from .server import Daemon
 from .store import software_version, unique_path
 from .summary import summarise
 
@@ -91,6 +92,17 @@ def _summary(ev: ScanEnded, last: PointSaved | None) -> str:
     return text
 
 
+def _bind(daemon: Daemon, args: argparse.Namespace, *, fallback: bool) -> None:
+    try:
+        daemon.bind(getattr(args, "data", None), getattr(args, "control", None))
+    except ConfigError as exc:
+        if not fallback:
+            raise
+        # The embedded run must not fail because another program holds the port: take free ones.
+        print(f"warning: {exc}; using free ports instead", file=sys.stderr)
+        daemon.bind("tcp://127.0.0.1:*", "tcp://127.0.0.1:*")
+
+
 def cmd_run(args: argparse.Namespace) -> int:
     cfg, bench_cfg = _load(args)
     scan = cfg.require_scan()
@@ -98,57 +110,86 @@ def cmd_run(args: argparse.Namespace) -> int:
     target = args.output or scan.output
     check_output(target, cfg.path, "--output" if args.output else "scan.output")
     output = unique_path(target)
-    seed = scan.seed
+    stream = bench_cfg.config.stream or cfg.stream
     bench = build_bench(bench_cfg.bench, (bench_cfg.config.simulation or cfg.config.simulation),
-                        realtime=not args.fast, seed=seed)
+                        realtime=not args.fast, seed=scan.seed)
     print(describe_plan(cfg, bench_cfg, plan, str(output)), file=sys.stderr)
     bench.connect()
-    runner = Runner(bench)
-    job = ScanJob(cfg, scan, plan, output, new_scan_id())
-    progress = ProgressPrinter()
-    interrupted: list[str] = []
-
-    def on_signal(signum: int, frame: object) -> None:
-        # Ask the runner to stop and keep waiting for its end event: the file is then closed properly.
-        name = signal.Signals(signum).name
-        if not interrupted:
-            progress.finish()
-            print("interrupted: stopping safely, the file is kept (marked aborted)...", file=sys.stderr)
-            runner.abort("interrupted by the user (Ctrl-C)" if signum == signal.SIGINT else f"stopped by {name}")
-        interrupted.append(name)
-
-    previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
-    last: PointSaved | None = None
+    daemon = Daemon(bench, bench_cfg, stream)
     try:
-        runner.start(job)
-        while True:
-            try:
-                ev = runner.events.get(timeout=0.5)
-            except queue.Empty:
-                continue
+        _bind(daemon, args, fallback=True)
+        print(f"live data on {daemon.data_endpoint}, control on {daemon.control_endpoint} "
+              "(`shotpair monitor` can attach)", file=sys.stderr)
+        progress = ProgressPrinter()
+        outcome: dict[str, object] = {}
+        interrupted: list[str] = []
+
+        def on_event(ev: object) -> None:
             if isinstance(ev, ScanStarted):
                 print(f"writing {ev.path}", file=sys.stderr)
             elif isinstance(ev, PointSaved):
-                last = ev
+                outcome["last"] = ev
                 progress.point(ev)
             elif isinstance(ev, LogEvent):
                 progress.finish()
                 print(f"{ev.level}: {ev.message}", file=sys.stderr)
             elif isinstance(ev, ScanEnded):
                 progress.finish()
-                print(_summary(ev, last), file=sys.stderr)
-                runner.join(10.0)
-                if ev.state == "complete":
-                    return EXIT_OK
-                return EXIT_INTERRUPTED if interrupted else EXIT_SCAN_FAILED
+                print(_summary(ev, outcome.get("last")), file=sys.stderr)  # type: ignore[arg-type]
+                outcome["state"] = ev.state
+
+        def on_signal(signum: int, frame: object) -> None:
+            # Ask the runner to stop and keep serving until its end event: the file is then closed properly.
+            if not interrupted:
+                progress.finish()
+                print("interrupted: stopping safely, the file is kept (marked aborted)...", file=sys.stderr)
+                daemon.runner.abort("interrupted by the user (Ctrl-C)" if signum == signal.SIGINT
+                                    else f"stopped by {signal.Signals(signum).name}")
+            interrupted.append(signal.Signals(signum).name)
+
+        previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
+        try:
+            daemon.listeners.append(on_event)
+            daemon.exit_when_idle = True
+            daemon.start_job(ScanJob(cfg, scan, plan, output, new_scan_id()))
+            daemon.serve()
+        finally:
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
     finally:
-        if not runner.join(0.0):
-            # Only reached if the loop above was left by an unexpected error: still close the file.
-            runner.abort("the command stopped unexpectedly")
-            runner.join(30.0)
-        for sig, handler in previous.items():
-            signal.signal(sig, handler)
+        daemon.close()
         bench.disconnect()
+    if outcome.get("state") == "complete":
+        return EXIT_OK
+    return EXIT_INTERRUPTED if interrupted else EXIT_SCAN_FAILED
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    bench_cfg = load_config(args.config)
+    if bench_cfg.config.bench is None:
+        raise ConfigError("no [bench] section: the daemon needs a bench", file=bench_cfg.path, key_path="bench")
+    bench = build_bench(bench_cfg.bench, bench_cfg.config.simulation, realtime=not args.fast)
+    bench.connect()
+    daemon = Daemon(bench, bench_cfg, bench_cfg.stream)
+    try:
+        _bind(daemon, args, fallback=False)
+        print(f"serving bench {bench.settings.name!r}: data {daemon.data_endpoint}, control {daemon.control_endpoint}",
+              flush=True)
+
+        def on_signal(signum: int, frame: object) -> None:
+            daemon.request_stop()
+
+        previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
+        try:
+            daemon.serve()
+        finally:
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
+    finally:
+        daemon.close()
+        bench.disconnect()
+    print("daemon stopped; bench left safe", flush=True)
+    return EXIT_OK
 
 
 def cmd_show(args: argparse.Namespace) -> int:
@@ -191,7 +232,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--bench", help="take the bench from this file instead")
     p.add_argument("--output", "-o", help="output HDF5 file (overrides scan.output)")
     p.add_argument("--fast", action="store_true", help="simulated bench: run as fast as the computer allows")
+    p.add_argument("--data", metavar="ENDPOINT", help="publish live data here (default from [stream])")
+    p.add_argument("--control", metavar="ENDPOINT", help="accept control here (default from [stream])")
     p.set_defaults(func=cmd_run)
+
+    p = sub.add_parser("serve", help="run the daemon: connect the bench, wait for commands, stream data")
+    p.add_argument("config", help="TOML file with [bench] (and [stream], [simulation])")
+    p.add_argument("--data", metavar="ENDPOINT", help="data stream endpoint (default from [stream])")
+    p.add_argument("--control", metavar="ENDPOINT", help="control endpoint (default from [stream])")
+    p.add_argument("--fast", action="store_true", help="simulated bench: run as fast as the computer allows")
+    p.set_defaults(func=cmd_serve)
+
+    add_remote_commands(sub)
 
     p = sub.add_parser("show", help="summarise a scan file: state, grid, ΔOD range, errors, rejected pairs")
     p.add_argument("file", help="an HDF5 file written by shotpair")

@@ -32,6 +32,7 @@ __all__ = [
     "LogSegment",
     "ListSegment",
     "ScanSettings",
+    "StreamSettings",
     "ShotpairConfig",
     "LoadedConfig",
     "load_config",
@@ -209,10 +210,30 @@ class ScanSettings(_Strict):
         return v
 
 
+class StreamSettings(_Strict):
+    """Where the daemon publishes data and listens for control, and how often it reports."""
+
+    data_endpoint: str = Field("tcp://127.0.0.1:5561", description="ZeroMQ endpoint the data stream (PUB) binds; "
+                               "127.0.0.1 keeps it on this computer, tcp://*:PORT opens it to the network.")
+    control_endpoint: str = Field("tcp://127.0.0.1:5562", description="ZeroMQ endpoint the control socket (ROUTER) binds.")
+    status_interval_s: float = Field(1.0, ge=0.05, le=60.0, description="Seconds between status heartbeats.")
+    block_interval_s: float = Field(0.1, ge=0.1, le=60.0, description="Shortest time between live partial averages, s.")
+    send_high_water_mark: int = Field(1000, ge=1, le=1_000_000, description="Messages queued per subscriber before "
+                                      "the newest are dropped (a slow client loses messages, never the scan's time).")
+
+    @field_validator("data_endpoint", "control_endpoint")
+    @classmethod
+    def _endpoint(cls, v: str) -> str:
+        if not (v.startswith("tcp://") or v.startswith("ipc://") or v.startswith("inproc://")):
+            raise ValueError("an endpoint looks like tcp://127.0.0.1:5561 (or ipc://PATH)")
+        return v
+
+
 class ShotpairConfig(_Strict):
     """A whole configuration file."""
 
     bench: BenchSettings | None = None
+    stream: StreamSettings | None = None
     scan: ScanSettings | None = None
     simulation: SimulationSettings | None = None
 
@@ -228,6 +249,10 @@ class LoadedConfig:
     @property
     def bench(self) -> BenchSettings:
         return self.config.bench or BenchSettings()
+
+    @property
+    def stream(self) -> StreamSettings:
+        return self.config.stream or StreamSettings()
 
     @property
     def simulation(self) -> SimulationSettings:

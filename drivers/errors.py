@@ -21,6 +21,8 @@ __all__ = [
     "StateError",
     "ProtocolError",
     "StorageError",
+    "DaemonError",
+    "DaemonUnavailable",
 ]
 
 
@@ -117,3 +119,21 @@ class StorageError(ShotpairError):
     def __init__(self, message: str, *, path: str) -> None:
         self.path = path
         super().__init__(f"{path}: {message}")
+
+
+class DaemonError(ShotpairError):
+    """The daemon answered a control request with an error; ``code`` is the protocol's error code."""
+
+    def __init__(self, message: str, *, code: str = "internal_error", endpoint: str = "") -> None:
+        self.code = code
+        self.endpoint = endpoint
+        super().__init__(f"{endpoint}: {message}" if endpoint else message)
+
+
+class DaemonUnavailable(DaemonError):
+    """No daemon answered at the endpoint within the timeout."""
+
+    def __init__(self, endpoint: str, timeout_s: float) -> None:
+        self.timeout_s = timeout_s
+        super().__init__(f"no shotpair daemon answered within {timeout_s:g} s (is `shotpair serve` running "
+                         "there?)", code="unavailable", endpoint=endpoint)
