@@ -109,12 +109,15 @@ class Subscriber:
     """
 
     def __init__(self, endpoint: str = DEFAULT_DATA, topics: Sequence[str] | None = None,
-                 context: zmq.Context[Any] | None = None, receive_hwm: int = 10_000) -> None:
+                 context: zmq.Context[Any] | None = None, receive_hwm: int = 10_000,
+                 receive_buffer_bytes: int | None = None) -> None:
         self.endpoint = endpoint
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.SUB)
         self._sock.setsockopt(zmq.LINGER, 0)
         self._sock.setsockopt(zmq.RCVHWM, receive_hwm)
+        if receive_buffer_bytes is not None:  # the kernel's TCP buffer; must be set before connecting
+            self._sock.setsockopt(zmq.RCVBUF, receive_buffer_bytes)
         for topic in topics or [""]:
             self._sock.setsockopt(zmq.SUBSCRIBE, topic.encode("ascii"))
         self._sock.connect(endpoint)

@@ -85,7 +85,7 @@ def encode_arrays(arrays: Mapping[str, np.ndarray]) -> tuple[list[dict[str, Any]
         a = np.asarray(arr)
         if a.dtype.kind not in _ALLOWED_KINDS:
             raise ProtocolError(f"array {name!r} has dtype {a.dtype}, not a plain number type", code="internal_error")
-        a = np.ascontiguousarray(a, dtype=a.dtype.newbyteorder("<") if a.dtype.byteorder == ">" else a.dtype)
+        a = np.asarray(a, dtype=a.dtype.newbyteorder("<") if a.dtype.byteorder == ">" else a.dtype, order="C")
         specs.append({"name": str(name), "dtype": a.dtype.str, "shape": list(a.shape)})
         frames.append(memoryview(a).cast("B") if a.size else b"")
     return specs, frames
@@ -100,12 +100,12 @@ def decode_arrays(specs: Any, frames: Sequence[bytes | memoryview]) -> dict[str,
     for spec, frame in zip(specs, frames):
         try:
             name, dtype, shape = spec["name"], np.dtype(spec["dtype"]), tuple(int(s) for s in spec["shape"])
-        except (KeyError, TypeError, ValueError) as exc:
+        except (KeyError, TypeError, ValueError, OverflowError) as exc:
             raise ProtocolError(f"bad array description {spec!r}: {exc}") from None
         if dtype.kind not in _ALLOWED_KINDS or any(s < 0 for s in shape):
             raise ProtocolError(f"array {name!r}: dtype {dtype} or shape {shape} not allowed")
         buf = memoryview(frame).cast("B")
-        expected = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+        expected = math.prod(shape) * dtype.itemsize
         if buf.nbytes != expected:
             raise ProtocolError(f"array {name!r}: {buf.nbytes} bytes for shape {shape} {dtype.str} ({expected})")
         out[str(name)] = np.frombuffer(buf, dtype=dtype).reshape(shape)
@@ -118,7 +118,7 @@ def _header(raw: bytes | memoryview) -> dict[str, Any]:
         raise ProtocolError(f"header of {len(data)} bytes is larger than {MAX_HEADER_BYTES}")
     try:
         obj = json.loads(data.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as exc:
         raise ProtocolError(f"header is not UTF-8 JSON: {exc}") from None
     if not isinstance(obj, dict):
         raise ProtocolError("header is not a JSON object")

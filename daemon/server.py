@@ -270,7 +270,8 @@ class Daemon:
             return protocol.encode_error(_code(exc), str(exc), request_id, state=self.runner.state.value)
         except Exception as exc:  # noqa: BLE001 - a bug answers with an error; the daemon keeps running
             log.exception("error while answering a request")
-            return protocol.encode_error("internal_error", f"{type(exc).__name__}: {exc}", request_id)
+            return protocol.encode_error("internal_error", f"{type(exc).__name__}: {exc}", request_id,
+                                         state=self.runner.state.value)
 
     @classmethod
     def commands(cls) -> list[str]:
