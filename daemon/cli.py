@@ -21,6 +21,7 @@ from .config import LoadedConfig, check_output, load_config
 from .events import LogEvent, PointSaved, ScanEnded, ScanStarted
 from .plan import ScanPlan, make_plan
 from .progress import ProgressPrinter, format_duration
+from .monitor import add_monitor_command
 from .remote import add_remote_commands
 from .runner import ScanJob, new_scan_id
 from .server import Daemon
@@ -244,6 +245,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(func=cmd_serve)
 
     add_remote_commands(sub)
+    add_monitor_command(sub)
 
     p = sub.add_parser("show", help="summarise a scan file: state, grid, ΔOD range, errors, rejected pairs")
     p.add_argument("file", help="an HDF5 file written by shotpair")

@@ -220,6 +220,9 @@ class StreamSettings(_Strict):
     block_interval_s: float = Field(0.1, ge=0.1, le=60.0, description="Shortest time between live partial averages, s.")
     send_high_water_mark: int = Field(1000, ge=1, le=1_000_000, description="Messages queued per subscriber before "
                                       "the newest are dropped (a slow client loses messages, never the scan's time).")
+    send_buffer_bytes: int | None = Field(None, ge=4096, le=64 * 2**20, description="Kernel send buffer per "
+                                          "subscriber connection, bytes; omit to let the system size it (up to a "
+                                          "few MB are then held for a stuck client before messages are dropped).")
 
     @field_validator("data_endpoint", "control_endpoint")
     @classmethod

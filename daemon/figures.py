@@ -131,7 +131,7 @@ def scan_figure(data: ScanData, *, delays_ps: Sequence[float] | None = None,
     ax_kin.set_xlabel(f"delay (ps; linear within ±{LINEAR_WINDOW_PS:g} ps, log beyond)")
     ax_kin.set_ylabel("ΔOD (mOD)")
     ax_kin.set_title("kinetics (bars: ±1 standard error)")
-    if ax_kin.lines:
+    if any(not line.get_label().startswith("_") for line in ax_kin.lines):
         ax_kin.legend(fontsize="small")
 
     with np.errstate(all="ignore"):

@@ -256,6 +256,12 @@ class Runner:
                 store.finish(state, reason)
             path = str(store.path) if store is not None else str(job.output)
             with self._lock:
+                # Commands that came too late for this scan (an abort as it ended) must not touch the next one.
+                while True:
+                    try:
+                        self._commands.get_nowait()
+                    except queue.Empty:
+                        break
                 if self.machine.can("stopped"):
                     self.machine.step("stopped")
             self._emit(ScanEnded(job.scan_id, state, reason, path, done, problems), must=True)

@@ -26,7 +26,7 @@ from .events import (BlockProgress, Event, LogEvent, MoveDone, PointSaved, ScanE
                      SweepDone)
 from .plan import make_plan
 from .runner import Runner, ScanJob, new_scan_id
-from .states import TRANSITIONS
+from .states import TRANSITIONS, RunState
 from .store import software_version, unique_path
 
 __all__ = ["Daemon"]
@@ -77,7 +77,7 @@ class Daemon:
                                         "point": None, "points": None, "points_done": 0, "points_total": 0,
                                         "delay_ps": None, "shots_per_s": None, "rejected_fraction": None,
                                         "excess_noise_median": None, "eta_s": None, "last_error": None,
-                                        "last_scan_state": None}
+                                        "last_scan_state": None, "last_scan_id": None}
         self._map: dict[str, np.ndarray] | None = None
         self._job_delays = np.zeros(0)
         self._last_status_s = 0.0
@@ -89,6 +89,8 @@ class Daemon:
         self._pub = self._ctx.socket(zmq.PUB)
         self._pub.setsockopt(zmq.LINGER, 0)
         self._pub.setsockopt(zmq.SNDHWM, self.stream.send_high_water_mark)
+        if self.stream.send_buffer_bytes is not None:
+            self._pub.setsockopt(zmq.SNDBUF, self.stream.send_buffer_bytes)
         self._router = self._ctx.socket(zmq.ROUTER)
         self._router.setsockopt(zmq.LINGER, 0)
         self._router.setsockopt(zmq.ROUTER_MANDATORY, 0)
@@ -179,7 +181,8 @@ class Daemon:
             px = self.bench.settings.detector.pixels
             st.update(scan_id=ev.scan_id, output=ev.path, sweeps=ev.sweeps, points=ev.n_points, points_done=0,
                       points_total=ev.n_points * ev.sweeps, eta_s=ev.estimated_duration_s, sweep=None, point=None,
-                      delay_ps=None, last_error=None)
+                      delay_ps=None, last_error=None, shots_per_s=None, rejected_fraction=None,
+                      excess_noise_median=None)
             self._map = {"delta_od": np.full((ev.n_points, px), np.nan),
                          "delta_od_errors": np.full((ev.n_points, px), np.nan),
                          "delay_ps": self._job_delays, "wavelength_nm": self.bench.settings.detector.wavelengths_nm(),
@@ -206,7 +209,8 @@ class Daemon:
                            "eta_s": ev.eta_s, "shots_per_s": ev.shots_per_s},
                           {"delta_od": r.delta_od, "delta_od_error": r.delta_od_error, "noise_floor": r.floor,
                            "mean_counts_pump_on": r.mean_counts_on, "mean_counts_pump_off": r.mean_counts_off,
-                           "masked": r.masked, "combined_delta_od": c.delta_od, "combined_delta_od_error": c.delta_od_error})
+                           "masked": r.masked, "combined_delta_od": c.delta_od, "combined_delta_od_error": c.delta_od_error,
+                           "combined_noise_floor": c.floor})
         elif isinstance(ev, BlockProgress):
             r = ev.result
             self._publish("block", ev.scan_id, {"sweep": ev.sweep, "index": ev.index, "delay_ps": ev.delay_ps,
@@ -219,7 +223,7 @@ class Daemon:
                            "delay_ps": self._map["delay_ps"] if self._map else np.zeros(0),
                            "wavelength_nm": self.bench.settings.detector.wavelengths_nm()})
         elif isinstance(ev, ScanEnded):
-            st.update(last_scan_state=ev.state, last_error=ev.reason or None, eta_s=0.0)
+            st.update(last_scan_state=ev.state, last_scan_id=ev.scan_id, last_error=ev.reason or None, eta_s=0.0)
             if self.exit_when_idle:
                 self._stop = True
             self._publish("scan", ev.scan_id, {"event": ev.state, "path": ev.path, "reason": ev.reason,
@@ -267,6 +271,8 @@ class Daemon:
             fields, arrays = handler(req)
             return protocol.encode_reply(request_id, arrays, **fields)
         except ShotpairError as exc:
+            if request_id is None:
+                request_id = _id_of(body)
             return protocol.encode_error(_code(exc), str(exc), request_id, state=self.runner.state.value)
         except Exception as exc:  # noqa: BLE001 - a bug answers with an error; the daemon keeps running
             log.exception("error while answering a request")
@@ -299,12 +305,15 @@ class Daemon:
                                 "computer)", code="bad_argument")
         scan = cfg.require_scan()
         plan = make_plan(scan, self.bench.settings, cfg.path)
+        if req.get("output") is not None and not isinstance(req.get("output"), str):
+            raise ProtocolError("'output' must be a file path (a string)", code="bad_argument")
         target = req.get("output") or scan.output
         check_output(target, cfg.path, "output" if req.get("output") else "scan.output")
         output = unique_path(target)
         job = ScanJob(cfg, scan, plan, output, new_scan_id())
         self._job_delays = plan.delays_ps
         self.runner.start(job)
+        self._publish_status()
         return {"scan_id": job.scan_id, "output": str(output), "n_points": plan.n_points, "sweeps": plan.sweeps,
                 "estimated_duration_s": plan.estimated_duration_s()}, None
 
@@ -341,11 +350,24 @@ class Daemon:
             raise ProtocolError("move needs a finite number 'delay_ps'", code="bad_argument")
         self._require("move")
         position = self.runner.move(float(delay))
-        return {"delay_ps": float(delay), "position_mm": position, "state": self.runner.state.value}, None
+        self._publish_status()
+        # the state the command entered (a fast move may already be over when this reply is built)
+        return {"delay_ps": float(delay), "position_mm": position, "state": RunState.MOVING.value}, None
 
     def _cmd_shutdown(self, req: dict[str, Any]) -> tuple[dict[str, Any], None]:
         self._stop = True
         return {"state": self.runner.state.value, "stopping": True}, None
+
+
+def _id_of(body: list[bytes]) -> Any:
+    """The ``id`` of a request that failed to decode, when it is at least a JSON object with one."""
+    import json
+
+    try:
+        obj = json.loads(body[0]) if len(body) == 1 else None
+    except (ValueError, RecursionError):
+        return None
+    return obj.get("id") if isinstance(obj, dict) else None
 
 
 def _toml_text(table: dict[str, Any]) -> str:

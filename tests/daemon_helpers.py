@@ -10,6 +10,7 @@ import threading
 from pathlib import Path
 
 SERVE_TIMEOUT_S = 60.0
+PIXELS = 2048
 
 BENCH = """
 [bench]
@@ -17,13 +18,14 @@ name = "test bench"
 dark_shots = 200
 
 [bench.detector]
-pixels = 1024
-wavelength_poly_nm = [420.0, 0.29325513]
+pixels = 2048
+wavelength_poly_nm = [420.0, 0.146556]
 block_shots = 100
 
 [stream]
 status_interval_s = 0.2
 send_high_water_mark = 10
+send_buffer_bytes = 65536
 
 [simulation]
 seed = 5

@@ -9,7 +9,7 @@ import h5py
 import numpy as np
 import pytest
 
-from daemon_helpers import Served, write_bench, write_scan
+from daemon_helpers import PIXELS, Served, write_bench, write_scan
 from shotpair.daemon.client import ControlClient, Subscriber
 from shotpair.drivers.errors import DaemonError, DaemonUnavailable
 
@@ -49,7 +49,7 @@ def test_pause_resume_abort_over_tcp(served, tmp_path):
             c.start(scan=scan_table(write_scan(tmp_path, "second")))
         assert info.value.code == "illegal_state"
         point = wait_for(sub, lambda m: m.topic == "point")
-        assert point["scan_id"] == scan_id and point.arrays["delta_od"].shape == (1024,)
+        assert point["scan_id"] == scan_id and point.arrays["delta_od"].shape == (PIXELS,)
         c.pause()
         wait_for(sub, lambda m: m.topic == "status" and m["state"] == "paused")
         assert c.status()["state"] == "paused"
@@ -57,7 +57,7 @@ def test_pause_resume_abort_over_tcp(served, tmp_path):
         wait_for(sub, lambda m: m.topic == "status" and m["state"] == "acquiring")
         wait_for(sub, lambda m: m.topic == "point")
         snap = c.snapshot()
-        assert snap.arrays["delta_od"].shape == (9, 1024) and snap.arrays["completed"].shape == (2, 9)
+        assert snap.arrays["delta_od"].shape == (9, PIXELS) and snap.arrays["completed"].shape == (2, 9)
         assert np.isfinite(snap.arrays["delta_od"]).any()
         c.abort(reason="sample degraded")
         end = wait_for(sub, lambda m: m.topic == "scan" and m["event"] != "started")
@@ -95,8 +95,11 @@ def test_bad_requests_get_errors_and_the_daemon_lives(served, tmp_path):
 
 def test_stalled_subscriber_loses_messages_not_time(served, tmp_path):
     with ControlClient(served.control, timeout_s=10) as c, Subscriber(served.data) as watcher:
-        durations, seqs = [], []
+        durations: list[float] = []
+        seqs: list[int] = []
         stalled = None
+        c.move(0.0)  # homes the stage first, so that neither scan below pays for homing
+        wait_for(watcher, lambda m: m.topic == "log" and m["message"].startswith("moved to"))
         try:
             for name in ("alone", "stalled"):
                 if name == "stalled":
@@ -107,14 +110,15 @@ def test_stalled_subscriber_loses_messages_not_time(served, tmp_path):
                 end = wait_for(watcher, lambda m: m.topic == "scan" and m["event"] != "started")
                 assert end["event"] == "complete"
                 durations.append(end["time"] - start["time"])
-                seqs.append(end["seq"] - start["seq"])
-            # what the stalled subscriber kept: far fewer messages than were published, with gaps in seq
-            got = 0
-            for _ in range(seqs[1] + 50):
-                if stalled.receive(0.2) is None:
+                seqs.append(end["seq"])
+            # the stalled subscriber now reads on until it sees a message published after the scan: the stream
+            # went on past it, and the gap shows in seq
+            for _ in range(5000):
+                msg = stalled.receive(WAIT_S)
+                assert msg is not None
+                if msg["seq"] > seqs[1]:
                     break
-                got += 1
-            assert stalled.lost > 0 and got < seqs[1]
+            assert stalled.lost > 0
         finally:
             if stalled is not None:
                 stalled.close()

@@ -77,7 +77,7 @@ ERROR_CODES = {"bad_request", "unknown_command", "bad_argument", "illegal_state"
 COMMANDS = ["status", "start", "pause", "resume", "abort", "snapshot", "move", "shutdown"]
 STATUS = {"state", "scan_id", "output", "sweep", "sweeps", "point", "points", "points_done", "points_total",
           "delay_ps", "shots_per_s", "rejected_fraction", "excess_noise_median", "eta_s", "last_error",
-          "last_scan_state", "version", "protocol", "bench", "data_endpoint", "control_endpoint", "dropped_events"}
+          "last_scan_state", "last_scan_id", "version", "protocol", "bench", "data_endpoint", "control_endpoint", "dropped_events"}
 FIELDS = {
     "status": STATUS,
     "block": {"sweep", "index", "delay_ps", "shots_done", "shots_target", "pairs"},
@@ -96,7 +96,8 @@ ARRAYS: dict[Any, dict[str, tuple[str, tuple[str, ...]]]] = {
     "block": {"delta_od": ("<f8", ("p",)), "delta_od_error": ("<f8", ("p",))},
     "point": {name: ("<f8", ("p",)) for name in ("delta_od", "delta_od_error", "noise_floor", "mean_counts_pump_on",
                                                   "mean_counts_pump_off", "combined_delta_od",
-                                                  "combined_delta_od_error")} | {"masked": ("<i8", ("p",))},
+                                                  "combined_delta_od_error", "combined_noise_floor")}
+             | {"masked": ("<i8", ("p",))},
     "sweep": {"delta_od": ("<f8", ("n", "p")), "delta_od_error": ("<f8", ("n", "p")), "pairs": ("<i8", ("n",)),
               "delay_ps": ("<f8", ("n",)), "wavelength_nm": ("<f8", ("p",))},
     "snapshot": {"delta_od": ("<f8", ("n", "p")), "delta_od_errors": ("<f8", ("n", "p")), "delay_ps": ("<f8", ("n",)),
@@ -423,8 +424,8 @@ MALFORMED = [
     # (frames sent, error code, id echoed) -- section 5.2 and 7
     ([b"not json"], "bad_request", None),
     ([b"[1, 2]"], "bad_request", None),
-    ([b'{"id": 5}'], "bad_request", None),                                    # missing cmd
-    ([b'{"cmd": 5, "id": 6}'], "bad_request", None),
+    ([b'{"id": 5}'], "bad_request", 5),                                       # missing cmd
+    ([b'{"cmd": 5, "id": 6}'], "bad_request", 6),
     ([b'{"cmd": "status", "id": 7}', b"{}"], "bad_request", None),           # two frames
     ([b"", b'{"cmd": "status", "id": 8}'], "bad_request", None),             # what a REQ socket would send
     ([b'{"cmd": "frobnicate", "id": "x"}'], "unknown_command", "x"),

@@ -305,12 +305,8 @@ def test_malformed_replies_raise_protocol_error(frames):
         decode_reply(frames)
 
 
-# Known bug, reported (not fixed here, the fix is more than one line): a zero-size array whose other
-# dimensions are huge, or an array of more than 64 dimensions, matches its (empty or tiny) frame in
-# size and then fails in numpy's reshape with ValueError instead of ProtocolError. Fix: wrap the
-# frombuffer/reshape in decode_arrays in `try: ... except ValueError: raise ProtocolError(...)`.
-# strict=True: once fixed, this test fails until the xfail marker is removed.
-@pytest.mark.xfail(raises=ValueError, strict=True, reason="decode_arrays: numpy reshape ValueError leaks")
+# Shapes numpy cannot hold (a zero-size shape with huge sides, more than 64 dimensions) match their frame in
+# size and must still give ProtocolError, not numpy's ValueError.
 @pytest.mark.parametrize("shape, frame", [([0, 2 ** 40, 2 ** 40], b""), ([1] * 70, F8_1)],
                          ids=["zero-size-huge-dims", "70-dims"])
 def test_shapes_numpy_cannot_hold_raise_protocol_error(shape, frame):

@@ -21,7 +21,6 @@ import scipy.stats
 from pydantic import ValidationError
 
 from shotpair.drivers.base import Chopper, DelayAxis, Detector, Shutter
-from shotpair.drivers.delay_line import DelayLine
 from shotpair.drivers.errors import ConfigError, InstrumentTimeout, LimitError, ShotpairError, StateError
 from shotpair.drivers.registry import DriverContext, create
 from shotpair.simulators.bench import BenchCalibration, VirtualBench
