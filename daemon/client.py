@@ -71,6 +71,12 @@ class ControlClient:
     def status(self) -> dict[str, Any]:
         return self.request("status").header
 
+    def status_record(self) -> Any:
+        """The status as a typed :class:`~shotpair.daemon.records.StatusRecord`."""
+        from .records import to_record
+
+        return to_record(self.request("status"))
+
     def start(self, *, scan: dict[str, Any] | None = None, path: str | None = None,
               output: str | None = None) -> dict[str, Any]:
         args: dict[str, Any] = {}
@@ -133,6 +139,13 @@ class Subscriber:
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+    def receive_record(self, timeout_s: float) -> Any:
+        """The next message as a typed record (see daemon/records.py), or None on timeout."""
+        from .records import to_record
+
+        msg = self.receive(timeout_s)
+        return None if msg is None else to_record(msg)
 
     def receive(self, timeout_s: float) -> Message | None:
         """The next message, or None if none arrives within ``timeout_s``. Raises ProtocolError if malformed."""

@@ -52,7 +52,7 @@ def test_pause_resume_abort_over_tcp(served, tmp_path):
         assert point["scan_id"] == scan_id and point.arrays["delta_od"].shape == (PIXELS,)
         c.pause()
         wait_for(sub, lambda m: m.topic == "status" and m["state"] == "paused")
-        assert c.status()["state"] == "paused"
+        assert c.status_record().state == "paused"
         c.resume()
         wait_for(sub, lambda m: m.topic == "status" and m["state"] == "acquiring")
         wait_for(sub, lambda m: m.topic == "point")
