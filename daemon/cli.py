@@ -7,10 +7,11 @@ in runner.py; this module parses arguments, prints, and maps outcomes to exit co
 from __future__ import annotations
 
 import argparse
+import contextlib
 import logging
 import signal
 import sys
-from typing import Sequence
+from typing import Callable, Iterator, Sequence
 
 import numpy as np
 
@@ -93,6 +94,17 @@ def _summary(ev: ScanEnded, last: PointSaved | None) -> str:
     return text
 
 
+@contextlib.contextmanager
+def _handling_signals(handler: Callable[[int, object], None]) -> Iterator[None]:
+    """SIGINT and SIGTERM call ``handler`` inside the block; the previous handlers come back after it."""
+    previous = {sig: signal.signal(sig, handler) for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield
+    finally:
+        for sig, old in previous.items():
+            signal.signal(sig, old)
+
+
 def _bind(daemon: Daemon, args: argparse.Namespace, *, fallback: bool) -> None:
     try:
         daemon.bind(getattr(args, "data", None), getattr(args, "control", None))
@@ -148,15 +160,11 @@ def cmd_run(args: argparse.Namespace) -> int:
                                     else f"stopped by {signal.Signals(signum).name}")
             interrupted.append(signal.Signals(signum).name)
 
-        previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
-        try:
+        with _handling_signals(on_signal):
             daemon.listeners.append(on_event)
             daemon.exit_when_idle = True
             daemon.start_job(ScanJob(cfg, scan, plan, output, new_scan_id()))
             daemon.serve()
-        finally:
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
     finally:
         daemon.close()
         bench.disconnect()
@@ -180,12 +188,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
         def on_signal(signum: int, frame: object) -> None:
             daemon.request_stop()
 
-        previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGINT, signal.SIGTERM)}
-        try:
+        with _handling_signals(on_signal):
             daemon.serve()
-        finally:
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
     finally:
         daemon.close()
         bench.disconnect()
