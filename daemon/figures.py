@@ -30,6 +30,9 @@ class ScanData:
     delta_od_error: np.ndarray
     noise_floor: np.ndarray | None = None
     title: str = ""
+    #: Delays (ps) for the spectra panel and wavelengths (nm) for the kinetics panel; None: chosen here.
+    spectra_delays_ps: tuple[float, ...] | None = None
+    kinetics_wavelengths_nm: tuple[float, ...] | None = None
 
 
 def load_pyplot() -> Any:
@@ -98,6 +101,8 @@ def scan_figure(data: ScanData, *, delays_ps: Sequence[float] | None = None,
     plt = load_pyplot()
     from matplotlib.colors import TwoSlopeNorm
 
+    delays_ps = delays_ps or data.spectra_delays_ps
+    wavelengths_nm = wavelengths_nm or data.kinetics_wavelengths_nm
     fig, axes = plt.subplots(2, 2, figsize=(12, 8.5), constrained_layout=True)
     ax_map, ax_spec, ax_kin, ax_noise = axes[0, 0], axes[0, 1], axes[1, 0], axes[1, 1]
     dod = data.delta_od

@@ -281,7 +281,8 @@ def follow(state: MonitorState, control_endpoint: str, data_endpoint: str | None
 def run_monitor(*, control: str = DEFAULT_CONTROL, data: str | None = None, once: bool = False, plot: bool = False,
                 save_png: str | None = None, timeout_s: float = 5.0, out: TextIO | None = None,
                 err: TextIO | None = None, stop: threading.Event | None = None,
-                ready: threading.Event | None = None) -> int:
+                ready: threading.Event | None = None, delays_ps: Sequence[float] | None = None,
+                wavelengths_nm: Sequence[float] | None = None) -> int:
     """The whole `shotpair monitor` command; returns the exit code (0 also after Ctrl-C)."""
     out = out or sys.stdout
     err = err or sys.stderr
@@ -293,7 +294,8 @@ def run_monitor(*, control: str = DEFAULT_CONTROL, data: str | None = None, once
             with ControlClient(control, timeout_s=timeout_s) as client:
                 print(describe_status(client.status()), file=out)
             return EXIT_OK
-        state = MonitorState()
+        state = MonitorState(tuple(delays_ps) if delays_ps else None,
+                             tuple(wavelengths_nm) if wavelengths_nm else None)
         if save_png:
             return _save_png_mode(state, control, data, save_png, timeout_s, out, stop, ready)
         view = TerminalView(out, where=control)
@@ -347,9 +349,21 @@ def _save_png_mode(state: MonitorState, control: str, data: str | None, path: st
     return EXIT_OK
 
 
+def _numbers(text: str | None, option: str, err: TextIO) -> list[float] | None:
+    if not text:
+        return None
+    try:
+        return [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        print(f"shotpair: error: {option} takes numbers separated by commas, got {text!r}", file=err)
+        raise SystemExit(EXIT_USAGE) from None
+
+
 def _cmd_monitor(args: argparse.Namespace) -> int:
     return run_monitor(control=args.control, data=args.data, once=args.once, plot=args.plot,
-                       save_png=args.save_png, timeout_s=args.timeout)
+                       save_png=args.save_png, timeout_s=args.timeout,
+                       delays_ps=_numbers(args.delays, "--delays", sys.stderr),
+                       wavelengths_nm=_numbers(args.wavelengths, "--wavelengths", sys.stderr))
 
 
 def add_monitor_command(sub: Any) -> argparse.ArgumentParser:
@@ -369,6 +383,8 @@ def add_monitor_command(sub: Any) -> argparse.ArgumentParser:
     p.add_argument("--timeout", type=float, default=5.0, metavar="S",
                    help="seconds to wait for the daemon to answer (default 5); with --save-png also the longest "
                         "wait for the scan to end before the figure is written with what has arrived")
+    p.add_argument("--delays", metavar="PS,PS,...", help="delays (ps) for the spectra panel of the figure")
+    p.add_argument("--wavelengths", metavar="NM,NM,...", help="wavelengths (nm) for the kinetics panel")
     p.set_defaults(func=_cmd_monitor)
     return p
 

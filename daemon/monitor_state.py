@@ -59,7 +59,10 @@ class MonitorState:
     :attr:`finished` (the scan the map belongs to has ended).
     """
 
-    def __init__(self) -> None:
+    def __init__(self, spectra_delays_ps: tuple[float, ...] | None = None,
+                 kinetics_wavelengths_nm: tuple[float, ...] | None = None) -> None:
+        self.spectra_delays_ps = spectra_delays_ps
+        self.kinetics_wavelengths_nm = kinetics_wavelengths_nm
         self.status: dict[str, Any] = {}
         self.progress = Progress()
         self.scan_id: str | None = None
@@ -140,7 +143,8 @@ class MonitorState:
             title = f"scan {self.scan_id}: {p.points_done}/{p.points_total} points"
             title += f", {self.end_state}" if self.ended and self.end_state else f", {p.state}"
         return ScanData(self.delays_ps, self.wavelengths_nm, self.delta_od.copy(), self.delta_od_error.copy(),
-                        floor if floor is not None and np.isfinite(floor).any() else None, title)
+                        floor if floor is not None and np.isfinite(floor).any() else None, title,
+                        self.spectra_delays_ps, self.kinetics_wavelengths_nm)
 
     # ------------------------------------------------------------------ inputs
     def apply_status(self, status: dict[str, Any]) -> None:
