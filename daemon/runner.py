@@ -88,6 +88,8 @@ class Runner:
         self._lock = threading.Lock()
         self._done = threading.Condition(self._lock)
         self._working = False
+        #: Time spent paused in the present scan, s (left out of its shots/s and ETA).
+        self.paused_s = 0.0
         self.dropped_events = 0
 
     # --------------------------------------------------------------- public, any thread
@@ -170,6 +172,7 @@ class Runner:
     def _poll_commands(self, scan_id: str) -> bool:
         """Handle pending commands; blocks while paused. Returns True if a pause happened. Raises _Abort."""
         paused = False
+        paused_at = time.monotonic()
         while True:
             try:
                 cmd, reason = self._commands.get(timeout=0.1) if self.state is RunState.PAUSED else self._commands.get_nowait()
@@ -183,9 +186,11 @@ class Runner:
                 self.bench.shutter.close()
                 self._step("pause", scan_id)
                 paused = True
+                paused_at = time.monotonic()
             elif cmd == "resume" and self.machine.can("resume"):
                 self.bench.shutter.open()
                 self._step("resume", scan_id)
+                self.paused_s += time.monotonic() - paused_at
                 return paused
 
     def _work(self) -> None:
@@ -322,6 +327,7 @@ class Runner:
         combined_at: list[engine.PointResult | None] = [None] * plan.n_points
         line = s.delay_axis.delay_line()
         done, t0, shots_total = 0, time.monotonic(), 0
+        self.paused_s = 0.0
         for sweep, order in enumerate(plan.orders):
             for k, index in enumerate(order):
                 self._poll_commands(job.scan_id)
@@ -353,7 +359,7 @@ class Runner:
                                   delay_readback_ps=float(line.delay_ps(readback)), measured_at_s=time.time())
                 done += 1
                 shots_total += got
-                elapsed = time.monotonic() - t0
+                elapsed = time.monotonic() - t0 - self.paused_s
                 eta = elapsed / done * (plan.total_points - done)
                 self._emit(PointSaved(job.scan_id, sweep, k, int(index), float(plan.delays_ps[index]), result, combined,
                                       done, plan.total_points, elapsed, eta, shots_total / max(elapsed, 1e-9)))
