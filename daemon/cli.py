@@ -202,20 +202,12 @@ def cmd_show(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _floats(text: str | None) -> list[float] | None:
-    if not text:
-        return None
-    try:
-        return [float(x) for x in text.split(",") if x.strip()]
-    except ValueError:
-        raise ConfigError("expected numbers separated by commas", key_path="command line", value=text) from None
-
-
 def cmd_plot(args: argparse.Namespace) -> int:
+    from .figures import parse_numbers
     from .plotfile import plot_file
 
-    target = plot_file(args.file, args.save_png, show=args.show, delays_ps=_floats(args.delays),
-                       wavelengths_nm=_floats(args.wavelengths))
+    target = plot_file(args.file, args.save_png, show=args.show, delays_ps=parse_numbers(args.delays, "--delays"),
+                       wavelengths_nm=parse_numbers(args.wavelengths, "--wavelengths"))
     if target is not None:
         print(f"wrote {target}")
     return EXIT_OK

@@ -12,9 +12,9 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from shotpair.drivers.errors import ShotpairError
+from shotpair.drivers.errors import ConfigError, ShotpairError
 
-__all__ = ["ScanData", "load_pyplot", "scan_figure", "pick_delays", "pick_wavelengths"]
+__all__ = ["ScanData", "parse_numbers", "load_pyplot", "scan_figure", "pick_delays", "pick_wavelengths"]
 
 #: Delays within this distance of time zero are drawn on a linear scale, beyond it logarithmically (ps).
 LINEAR_WINDOW_PS = 1.0
@@ -33,6 +33,20 @@ class ScanData:
     #: Delays (ps) for the spectra panel and wavelengths (nm) for the kinetics panel; None: chosen here.
     spectra_delays_ps: tuple[float, ...] | None = None
     kinetics_wavelengths_nm: tuple[float, ...] | None = None
+
+
+def parse_numbers(text: str | None, option: str) -> list[float] | None:
+    """``"0.5,10,100"`` → ``[0.5, 10.0, 100.0]`` for the figure's choices; None when empty.
+
+    Raises ConfigError naming the command-line option when a piece is not a number.
+    """
+    if not text:
+        return None
+    try:
+        return [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise ConfigError("expected numbers separated by commas", file="command line", key_path=option,
+                          value=text) from None
 
 
 def load_pyplot() -> Any:

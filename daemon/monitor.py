@@ -27,7 +27,7 @@ import numpy as np
 from shotpair.drivers.errors import DaemonError, DaemonUnavailable, ProtocolError, ShotpairError, StorageError
 
 from .client import DEFAULT_CONTROL, ControlClient, Subscriber
-from .figures import ScanData, load_pyplot, scan_figure
+from .figures import ScanData, load_pyplot, parse_numbers, scan_figure
 from .monitor_state import MonitorState, Progress
 from .monitor_view import TerminalView, progress_bar, render_block, render_line, sparkline, text_spectrum
 from .protocol import Message
@@ -349,21 +349,11 @@ def _save_png_mode(state: MonitorState, control: str, data: str | None, path: st
     return EXIT_OK
 
 
-def _numbers(text: str | None, option: str, err: TextIO) -> list[float] | None:
-    if not text:
-        return None
-    try:
-        return [float(x) for x in text.split(",") if x.strip()]
-    except ValueError:
-        print(f"shotpair: error: {option} takes numbers separated by commas, got {text!r}", file=err)
-        raise SystemExit(EXIT_USAGE) from None
-
-
 def _cmd_monitor(args: argparse.Namespace) -> int:
     return run_monitor(control=args.control, data=args.data, once=args.once, plot=args.plot,
                        save_png=args.save_png, timeout_s=args.timeout,
-                       delays_ps=_numbers(args.delays, "--delays", sys.stderr),
-                       wavelengths_nm=_numbers(args.wavelengths, "--wavelengths", sys.stderr))
+                       delays_ps=parse_numbers(args.delays, "--delays"),
+                       wavelengths_nm=parse_numbers(args.wavelengths, "--wavelengths"))
 
 
 def add_monitor_command(sub: Any) -> argparse.ArgumentParser:

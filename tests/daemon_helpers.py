@@ -9,6 +9,9 @@ import sys
 import threading
 from pathlib import Path
 
+from shotpair.daemon.client import ControlClient
+from shotpair.drivers.errors import ShotpairError
+
 SERVE_TIMEOUT_S = 60.0
 PIXELS = 2048
 
@@ -70,9 +73,18 @@ class Served:
             self.lines.put(line)
 
     def stop(self) -> None:
+        """Ask the daemon to shut down (it leaves the bench safe); kill it if it does not go in time."""
         if self.proc.poll() is None:
-            self.proc.kill()
-            self.proc.wait(timeout=SERVE_TIMEOUT_S)
+            try:
+                with ControlClient(self.control, timeout_s=3.0) as c:
+                    c.shutdown()
+                self.proc.wait(timeout=15)
+            except (ShotpairError, subprocess.TimeoutExpired):
+                self.proc.kill()
+                self.proc.wait(timeout=SERVE_TIMEOUT_S)
+        for pipe in (self.proc.stdout, self.proc.stderr):
+            if pipe is not None:
+                pipe.close()
 
 
 def write_bench(tmp_path: Path) -> Path:

@@ -19,13 +19,13 @@ import sys
 import threading
 import time
 from collections.abc import Iterator
-from dataclasses import dataclass
 from pathlib import Path
 from typing import IO, Any
 
 import numpy as np
 import pytest
 
+from daemon_helpers import Served
 from shotpair.daemon import monitor, protocol
 from shotpair.daemon.client import ControlClient
 from shotpair.daemon.monitor import MonitorState, sparkline, text_spectrum
@@ -394,41 +394,15 @@ def read_line(stream: IO[str], timeout_s: float) -> str:
     return stream.readline()
 
 
-@dataclass
-class Served:
-    data: str
-    control: str
-    proc: subprocess.Popen[str]
-
-
 @pytest.fixture
 def daemon(tmp_path: Path) -> Iterator[Served]:
     cfg = tmp_path / "bench.toml"
     cfg.write_text(BENCH)
-    proc = subprocess.Popen([sys.executable, "-m", "shotpair.daemon.cli", "serve", str(cfg), "--fast",
-                             "--data", "tcp://127.0.0.1:*", "--control", "tcp://127.0.0.1:*"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL, text=True)
-    control = ""
+    served = Served(cfg, fast=True)
     try:
-        line = read_line(proc.stdout, 60.0)
-        m = re.search(r"data (\S+), control (\S+)", line)
-        assert m, f"unexpected first line of serve: {line!r}"
-        control = m.group(2)
-        yield Served(m.group(1), control, proc)
+        yield served
     finally:
-        if control and proc.poll() is None:
-            try:
-                with ControlClient(control, timeout_s=3.0) as c:
-                    c.shutdown()
-            except ShotpairError:
-                pass
-        try:
-            proc.wait(timeout=15)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=5)
-        proc.stdout.close()
-        proc.stderr.close()
+        served.stop()
 
 
 def colour_fractions(png: Path) -> tuple[float, float, float, float]:
