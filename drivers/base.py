@@ -14,7 +14,7 @@ import numpy as np
 
 from .errors import InstrumentReplyError
 
-__all__ = ["Instrument", "DelayAxis", "Chopper", "Shutter", "Detector", "ShotBlock"]
+__all__ = ["Instrument", "DelayAxis", "DelayGenerator", "Chopper", "Shutter", "Detector", "ShotBlock"]
 
 
 class Instrument(abc.ABC):
@@ -90,6 +90,28 @@ class DelayAxis(Instrument):
     @abc.abstractmethod
     def stop(self) -> None:
         """Stop any motion now. Must be safe to call at any time, also after errors."""
+
+
+class DelayGenerator(Instrument):
+    """A digital delay generator that delays the pump trigger electronically, in ps.
+
+    It is the delay axis for nanosecond-to-millisecond kinetics, beyond what a stage reaches. Delays are
+    the generator's own setting in ps (the bench file's ``time_zero_ps`` says which setting makes pump and
+    probe coincide); one unit for delay across the code base, however long.
+    """
+
+    @property
+    @abc.abstractmethod
+    def range_ps(self) -> tuple[float, float]:
+        """The (low, high) settings the generator accepts, in ps."""
+
+    @abc.abstractmethod
+    def set_delay_ps(self, delay_ps: float) -> None:
+        """Set the delay; returns when the generator has taken it. Raises LimitError outside ``range_ps``."""
+
+    @abc.abstractmethod
+    def delay_ps(self) -> float:
+        """The delay the generator reports, in ps."""
 
 
 class Chopper(Instrument):

@@ -13,7 +13,7 @@ from dataclasses import dataclass
 from importlib.metadata import entry_points
 from typing import Any, Callable, Mapping
 
-from .base import Chopper, DelayAxis, Detector, Instrument, Shutter
+from .base import Chopper, DelayAxis, DelayGenerator, Detector, Instrument, Shutter
 from .errors import ConfigError
 
 __all__ = ["KINDS", "DriverContext", "available", "create", "register"]
@@ -24,6 +24,7 @@ KINDS: dict[str, type[Instrument]] = {
     "chopper": Chopper,
     "shutter": Shutter,
     "detector": Detector,
+    "delay_generator": DelayGenerator,
 }
 
 ENTRY_POINT_GROUP = "shotpair.drivers"
@@ -35,6 +36,17 @@ _BUILTIN: dict[tuple[str, str], str] = {
     ("chopper", "sim"): "shotpair.simulators.instruments:make_chopper",
     ("shutter", "sim"): "shotpair.simulators.instruments:make_shutter",
     ("detector", "sim"): "shotpair.simulators.instruments:make_detector",
+    ("delay_generator", "sim"): "shotpair.simulators.instruments:make_delay_generator",
+    # Real drivers: SCPI instruments (any transport, usually VISA) and ASCII serial controllers
+    # described by command templates in the bench file.
+    ("delay_axis", "scpi"): "shotpair.drivers.scpi_devices:make_delay_axis",
+    ("chopper", "scpi"): "shotpair.drivers.scpi_devices:make_chopper",
+    ("shutter", "scpi"): "shotpair.drivers.scpi_devices:make_shutter",
+    ("detector", "scpi"): "shotpair.drivers.scpi_devices:make_detector",
+    ("delay_generator", "scpi"): "shotpair.drivers.scpi_devices:make_delay_generator",
+    ("delay_axis", "template"): "shotpair.drivers.template_devices:make_delay_axis",
+    ("chopper", "template"): "shotpair.drivers.template_devices:make_chopper",
+    ("shutter", "template"): "shotpair.drivers.template_devices:make_shutter",
 }
 
 _registered: dict[tuple[str, str], Factory] = {}

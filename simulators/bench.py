@@ -60,6 +60,10 @@ class BenchCalibration:
         Highest count the detector returns (at most 65535).
     has_reference:
         Whether a reference detector (same pixels) reads the probe before the sample.
+    generator_time_zero_ps:
+        Setting of the delay generator at which its electronic delay adds nothing, in ps.
+    generator_range_ps:
+        (low, high) settings the simulated delay generator accepts, in ps.
     """
 
     pixels: int
@@ -72,6 +76,8 @@ class BenchCalibration:
     travel_mm: tuple[float, float]
     saturation_counts: int = 65535
     has_reference: bool = False
+    generator_time_zero_ps: float = 0.0
+    generator_range_ps: tuple[float, float] = (0.0, 1.0e10)
 
     def __post_init__(self) -> None:
         wl = np.asarray(self.wavelengths_nm, dtype=float)
@@ -153,6 +159,10 @@ class VirtualBench:
         self.chopper = ChopperModel(settings.chopper, sw, calibration.repetition_rate_hz, self.rng)
         self.shutter_open = False
         self.next_shot = 0
+        #: Setting of the delay generator, in ps; the pump-probe delay is the stage's delay plus
+        #: (setting - calibration.generator_time_zero_ps). Delays beyond one shot period are not modelled
+        #: as overlapping shots: the sample simply sees the longer delay.
+        self.generator_setting_ps = calibration.generator_time_zero_ps
 
         wl = calibration.wavelengths_nm
         self.wavelengths_nm = wl
@@ -200,9 +210,13 @@ class VirtualBench:
         """Present stage position, in mm."""
         return self.stage.position_mm(self.clock.now_s())
 
+    def electronic_delay_ps(self) -> float:
+        """Delay the generator adds to the stage's, in ps (0 at its time-zero setting)."""
+        return self.generator_setting_ps - self.calibration.generator_time_zero_ps
+
     def delay_ps(self) -> float:
-        """Present nominal pump-probe delay from the stage position and the delay-line calibration, in ps."""
-        return float(self.calibration.delay_line.delay_ps(self.position_mm()))
+        """Present nominal pump-probe delay: the stage's (from the delay-line calibration) plus the generator's, ps."""
+        return float(self.calibration.delay_line.delay_ps(self.position_mm())) + self.electronic_delay_ps()
 
     def shot_at(self, t_s: float) -> int:
         """Index of the first laser shot at or after virtual time ``t_s``."""
@@ -238,7 +252,7 @@ class VirtualBench:
         now = self.clock.now_s()
         k0 = max(self.next_shot, self.shot_at(now))
         position = self.stage.position_mm(now)
-        delay = float(cal.delay_line.delay_ps(position))
+        delay = float(cal.delay_line.delay_ps(position)) + self.electronic_delay_ps()
         shots = k0 + np.arange(n, dtype=np.int64)
 
         pump_on = self.chopper.pump_on(shots)

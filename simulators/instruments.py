@@ -13,7 +13,7 @@ import math
 from importlib.metadata import PackageNotFoundError, version
 from typing import Any, Mapping
 
-from shotpair.drivers.base import Chopper, DelayAxis, Detector, Shutter, ShotBlock
+from shotpair.drivers.base import Chopper, DelayAxis, DelayGenerator, Detector, Shutter, ShotBlock
 from shotpair.drivers.errors import ConfigError, InstrumentTimeout, LimitError, StateError
 
 from .bench import VirtualBench
@@ -26,10 +26,12 @@ __all__ = [
     "SimChopper",
     "SimShutter",
     "SimDetector",
+    "SimDelayGenerator",
     "make_delay_axis",
     "make_chopper",
     "make_shutter",
     "make_detector",
+    "make_delay_generator",
 ]
 
 #: Virtual time one status query of the stage costs, in s (a serial round trip), so that a loop polling
@@ -248,6 +250,32 @@ class SimDetector(_SimInstrument, Detector):
                 "repetition_rate_hz": cal.repetition_rate_hz}
 
 
+class SimDelayGenerator(_SimInstrument, DelayGenerator):
+    """The bench's digital delay generator: delays the pump trigger by a setting in ps."""
+
+    _kind = "delay generator"
+    _serial = "sim-0005"
+
+    @property
+    def range_ps(self) -> tuple[float, float]:
+        return self.bench.calibration.generator_range_ps
+
+    def set_delay_ps(self, delay_ps: float) -> None:
+        """Set the delay at once (electronic: no settling). Raises LimitError outside ``range_ps``."""
+        self._require("set delay")
+        low, high = self.range_ps
+        if not (math.isfinite(delay_ps) and low <= delay_ps <= high):
+            raise LimitError("delay generator setting in ps", instrument=self.name, value=delay_ps, low=low, high=high)
+        self.bench.generator_setting_ps = float(delay_ps)
+
+    def delay_ps(self) -> float:
+        self._require("query")
+        return self.bench.generator_setting_ps
+
+    def state(self) -> dict[str, Any]:
+        return {"delay_ps": self.bench.generator_setting_ps}
+
+
 def _bench_for(name: str, options: Mapping[str, Any], context: Any) -> VirtualBench:
     for key in options:
         raise ConfigError("the simulated driver takes no options", key_path=f"bench.{name}.options.{key}",
@@ -277,3 +305,8 @@ def make_shutter(name: str, options: Mapping[str, Any], context: Any) -> SimShut
 def make_detector(name: str, options: Mapping[str, Any], context: Any) -> SimDetector:
     """Registry factory for ``detector`` driver ``sim``. Raises ConfigError for any option."""
     return SimDetector(name, _bench_for(name, options, context))
+
+
+def make_delay_generator(name: str, options: Mapping[str, Any], context: Any) -> SimDelayGenerator:
+    """Registry factory for ``delay_generator`` driver ``sim``. Raises ConfigError for any option."""
+    return SimDelayGenerator(name, _bench_for(name, options, context))
