@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from shotpair.drivers import registry
-from shotpair.drivers.base import Chopper, DelayAxis, Detector, Instrument, Shutter
+from shotpair.drivers.base import Chopper, DelayAxis, DelayGenerator, Detector, Instrument, Shutter
 from shotpair.drivers.errors import ConfigError, InstrumentError, ShotpairError
 
 from .config import BenchSettings
@@ -33,11 +33,22 @@ class Bench:
     shutter: Shutter
     detector: Detector
     simulation: Any = None
+    delay_generator: DelayGenerator | None = None
+    #: The simulated bench's model when only its noise-free truth is wanted: instruments served by the wire
+    #: simulators (`shotpair simulate`) are real drivers, but the file still gets the truth beside the data.
+    truth_model: Any = None
     connected: list[Instrument] = field(default_factory=list)
 
     def instruments(self) -> dict[str, Instrument]:
-        return {"delay_axis": self.delay_axis, "chopper": self.chopper, "shutter": self.shutter,
-                "detector": self.detector}
+        out: dict[str, Instrument] = {"delay_axis": self.delay_axis, "chopper": self.chopper,
+                                      "shutter": self.shutter, "detector": self.detector}
+        if self.delay_generator is not None:
+            out["delay_generator"] = self.delay_generator
+        return out
+
+    def truth(self) -> Any:
+        """The virtual bench whose ``truth_delta_od`` goes into the file, or None on a real bench."""
+        return self.simulation if self.simulation is not None else self.truth_model
 
     def connect(self) -> None:
         """Connect every instrument; on failure disconnect those already connected and re-raise."""
@@ -50,6 +61,9 @@ class Bench:
             except OSError as exc:
                 self.disconnect()
                 raise InstrumentError(f"cannot connect ({exc})", instrument=name) from None
+            except Exception:
+                self.disconnect()
+                raise
             self.connected.append(inst)
         if self.detector.pixels != self.settings.detector.pixels:
             self.disconnect()
@@ -59,7 +73,7 @@ class Bench:
     def identities(self) -> dict[str, dict[str, Any]]:
         out: dict[str, dict[str, Any]] = {}
         for name, inst in self.instruments().items():
-            entry: dict[str, Any] = {"driver": getattr(self.settings, name).driver}
+            entry: dict[str, Any] = {"driver": self.settings.instrument_sections()[name].driver}
             try:
                 entry["identity"] = inst.identity()
                 entry["state"] = inst.state()
@@ -92,13 +106,16 @@ class Bench:
 
 
 def build_bench(settings: BenchSettings, simulation: SimulationSettings | None = None, *, realtime: bool = True,
-                seed: int | None = None) -> Bench:
+                seed: int | None = None, config_path: str | None = None) -> Bench:
     """Create (not connect) the instruments named in the bench settings.
 
-    Raises ConfigError for an unknown driver or bad driver options.
+    With simulated drivers the virtual bench is built from ``simulation`` (defaults when None). A bench of
+    real drivers with a ``simulation`` section (what `shotpair simulate` writes) gets the model only to
+    store its noise-free truth. Raises ConfigError for an unknown driver or bad driver options, naming
+    ``config_path`` when given.
     """
-    virtual = None
-    if settings.uses_simulator():
+    virtual = truth_model = None
+    if settings.uses_simulator() or simulation is not None:
         from shotpair.simulators.bench import BenchCalibration, VirtualBench
 
         sim = simulation or SimulationSettings()
@@ -116,11 +133,24 @@ def build_bench(settings: BenchSettings, simulation: SimulationSettings | None =
             has_reference=det.has_reference,
             delay_line=settings.delay_axis.delay_line(),
             travel_mm=settings.delay_axis.travel_mm,
+            **({} if settings.delay_generator is None else {
+                "generator_time_zero_ps": settings.delay_generator.time_zero_ps,
+                "generator_range_ps": settings.delay_generator.range_ps}),
         )
-        virtual = VirtualBench(sim, calibration, realtime=realtime)
+        model = VirtualBench(sim, calibration, realtime=realtime)
+        if settings.uses_simulator():
+            virtual = model
+        else:
+            truth_model = model
     context = registry.DriverContext(bench_settings=settings, simulation=virtual)
     made: dict[str, Any] = {}
-    for kind in registry.KINDS:
-        section = getattr(settings, kind)
-        made[kind] = registry.create(kind, section.driver, kind, section.options, context)
-    return Bench(settings, made["delay_axis"], made["chopper"], made["shutter"], made["detector"], virtual)
+    for kind, section in settings.instrument_sections().items():
+        try:
+            made[kind] = registry.create(kind, section.driver, kind, section.options, context)
+        except ConfigError as exc:
+            if exc.file is None and config_path is not None:
+                raise ConfigError(exc.message, file=config_path, key_path=exc.key_path, value=exc.value,
+                                  allowed=exc.allowed) from None
+            raise
+    return Bench(settings, made["delay_axis"], made["chopper"], made["shutter"], made["detector"], virtual,
+                 made.get("delay_generator"), truth_model)

@@ -18,7 +18,8 @@ import numpy as np
 from shotpair.drivers.errors import ConfigError, ShotpairError, StorageError
 
 from .bench import build_bench
-from .config import LoadedConfig, check_output, load_config
+from .instrument_report import format_report, probe_instruments
+from .config import BenchSettings, LoadedConfig, check_output, load_config
 from .events import LogEvent, PointSaved, ScanEnded, ScanStarted
 from .plan import ScanPlan, make_plan
 from .progress import ProgressPrinter, format_duration
@@ -47,6 +48,17 @@ def _plan(cfg: LoadedConfig, bench_cfg: LoadedConfig) -> ScanPlan:
     return make_plan(cfg.require_scan(), bench_cfg.bench, cfg.path)
 
 
+def _axis_line(b: BenchSettings, plan: ScanPlan) -> str:
+    if plan.axis == "generator" and plan.generator_settings_ps is not None and b.delay_generator is not None:
+        g = plan.generator_settings_ps
+        return (f"generator     settings {g.min():.6g} to {g.max():.6g} ps (time zero {b.delay_generator.time_zero_ps:g} "
+                f"ps, range {list(b.delay_generator.range_ps)} ps); the stage waits at time zero "
+                f"({b.delay_axis.time_zero_mm} mm)")
+    return (f"stage         {plan.positions_mm.min():.4f} to {plan.positions_mm.max():.4f} mm "
+            f"(travel {list(b.delay_axis.travel_mm)} mm, {b.delay_axis.passes} passes, "
+            f"{b.delay_axis.delay_line().ps_per_mm:.5f} ps/mm, time zero {b.delay_axis.time_zero_mm} mm)")
+
+
 def describe_plan(cfg: LoadedConfig, bench_cfg: LoadedConfig, plan: ScanPlan, output: str) -> str:
     b = bench_cfg.bench
     scan = cfg.require_scan()
@@ -54,13 +66,11 @@ def describe_plan(cfg: LoadedConfig, bench_cfg: LoadedConfig, plan: ScanPlan, ou
     lines = [
         f"config        {cfg.path}" + (f" (bench from {bench_cfg.path})" if bench_cfg is not cfg else ""),
         f"bench         {b.name}: {b.repetition_rate_hz:g} Hz, detector {b.detector.pixels} px "
-        f"{w.min():.1f}-{w.max():.1f} nm, drivers " + ", ".join(f"{k}={getattr(b, k).driver}" for k in
-                                                              ("delay_axis", "chopper", "shutter", "detector")),
+        f"{w.min():.1f}-{w.max():.1f} nm, drivers " + ", ".join(f"{k}={v.driver}" for k, v in
+                                                              b.instrument_sections().items()),
         f"scan          {scan.title!r}: {plan.sweeps} sweep(s) x {plan.n_points} delay points, order {scan.order}",
         f"delays        {plan.delays_ps.min():.6g} to {plan.delays_ps.max():.6g} ps",
-        f"stage         {plan.positions_mm.min():.4f} to {plan.positions_mm.max():.4f} mm "
-        f"(travel {list(b.delay_axis.travel_mm)} mm, {b.delay_axis.passes} passes, "
-        f"{b.delay_axis.delay_line().ps_per_mm:.5f} ps/mm, time zero {b.delay_axis.time_zero_mm} mm)",
+        _axis_line(b, plan),
         f"shots         {plan.shots_per_point} per point, {plan.total_shots:,} in all"
         + (f" (incl. {plan.dark_shots} dark)" if plan.dark_shots else ""),
         f"duration      about {format_duration(plan.estimated_duration_s())} at {b.repetition_rate_hz:g} Hz "
@@ -73,12 +83,24 @@ def describe_plan(cfg: LoadedConfig, bench_cfg: LoadedConfig, plan: ScanPlan, ou
 def cmd_check(args: argparse.Namespace) -> int:
     cfg, bench_cfg = _load(args)
     if cfg.config.scan is None:
-        b = bench_cfg.bench
-        print(f"{cfg.path}: valid bench {b.name!r} (no [scan] section)")
+        print(f"{cfg.path}: valid bench {bench_cfg.bench.name!r} (no [scan] section)")
+    else:
+        plan = _plan(cfg, bench_cfg)
+        print(describe_plan(cfg, bench_cfg, plan, cfg.require_scan().output))
+    bench = build_bench(bench_cfg.bench, bench_cfg.config.simulation or cfg.config.simulation, realtime=False,
+                        config_path=bench_cfg.path)
+    if args.offline:
+        print("configuration is valid (instruments not contacted: --offline)")
         return EXIT_OK
-    plan = _plan(cfg, bench_cfg)
-    print(describe_plan(cfg, bench_cfg, plan, cfg.require_scan().output))
-    print("configuration is valid")
+    print("instruments (asked, nothing moved):")
+    reports = probe_instruments(bench)
+    print(format_report(reports))
+    failed = [r.name for r in reports if not r.ok]
+    if failed:
+        print(f"shotpair: error: configuration is valid but {', '.join(failed)} did not answer as expected",
+              file=sys.stderr)
+        return EXIT_SCAN_FAILED
+    print("configuration is valid; every instrument answers")
     return EXIT_OK
 
 
@@ -125,7 +147,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     output = unique_path(target)
     stream = bench_cfg.config.stream or cfg.stream
     bench = build_bench(bench_cfg.bench, (bench_cfg.config.simulation or cfg.config.simulation),
-                        realtime=not args.fast, seed=scan.seed)
+                        realtime=not args.fast, seed=scan.seed, config_path=bench_cfg.path)
     print(describe_plan(cfg, bench_cfg, plan, str(output)), file=sys.stderr)
     bench.connect()
     daemon = Daemon(bench, bench_cfg, stream)
@@ -177,7 +199,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
     bench_cfg = load_config(args.config)
     if bench_cfg.config.bench is None:
         raise ConfigError("no [bench] section: the daemon needs a bench", file=bench_cfg.path, key_path="bench")
-    bench = build_bench(bench_cfg.bench, bench_cfg.config.simulation, realtime=not args.fast)
+    bench = build_bench(bench_cfg.bench, bench_cfg.config.simulation, realtime=not args.fast,
+                        config_path=bench_cfg.path)
     bench.connect()
     daemon = Daemon(bench, bench_cfg, bench_cfg.stream)
     try:
@@ -219,9 +242,11 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("-v", "--verbose", action="store_true", help="log debugging detail to stderr")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    p = sub.add_parser("check", help="validate a configuration and print the scan plan (moves nothing)")
+    p = sub.add_parser("check", help="validate a configuration, print the scan plan and ask every instrument "
+                       "who and how it is (moves nothing)")
     p.add_argument("config", help="TOML file with [scan] and/or [bench]")
     p.add_argument("--bench", help="take the bench from this file instead")
+    p.add_argument("--offline", action="store_true", help="only validate: do not contact the instruments")
     p.set_defaults(func=cmd_check)
 
     p = sub.add_parser("run", help="run the scan in a configuration on its bench, here and now")

@@ -27,6 +27,7 @@ __all__ = [
     "ChopperSettings",
     "ShutterSettings",
     "DetectorSettings",
+    "DelayGeneratorSettings",
     "BenchSettings",
     "LinearSegment",
     "LogSegment",
@@ -123,6 +124,31 @@ class DetectorSettings(_Strict):
         return self
 
 
+class DelayGeneratorSettings(_Strict):
+    """A digital delay generator that delays the pump trigger: the electronic delay axis (ns to ms)."""
+
+    driver: str = "sim"
+    options: dict[str, Any] = Field(default_factory=dict)
+    time_zero_ps: float = Field(0.0, description="Generator setting at which pump and probe coincide (cables and "
+                                "trigger offsets included), ps.")
+    range_ps: tuple[float, float] = Field((0.0, 1.0e10), description="Lowest and highest setting the generator "
+                                          "may be sent to, ps (the narrower of this and the generator's own range "
+                                          "is used).")
+    settle_s: float = Field(0.0, ge=0.0, le=60.0, description="Time to wait after a new setting before "
+                            "acquiring (trigger electronics settling), s.")
+
+    @field_validator("range_ps")
+    @classmethod
+    def _ordered(cls, v: tuple[float, float]) -> tuple[float, float]:
+        if not (math.isfinite(v[0]) and math.isfinite(v[1]) and v[0] < v[1]):
+            raise ValueError("range_ps must be [low, high] with low < high")
+        return v
+
+    def delay_range_ps(self) -> tuple[float, float]:
+        """Pump-probe delays the generator can give (its range minus time zero), ps."""
+        return self.range_ps[0] - self.time_zero_ps, self.range_ps[1] - self.time_zero_ps
+
+
 class BenchSettings(_Strict):
     """Everything about the bench: which instruments, how they are calibrated."""
 
@@ -132,10 +158,19 @@ class BenchSettings(_Strict):
     chopper: ChopperSettings = Field(default_factory=ChopperSettings)
     shutter: ShutterSettings = Field(default_factory=ShutterSettings)
     detector: DetectorSettings = Field(default_factory=DetectorSettings)
+    delay_generator: DelayGeneratorSettings | None = Field(None, description="An electronic delay axis; scans "
+                                                           "choose it with scan.axis = \"generator\".")
     dark_shots: int = Field(1000, ge=2, le=10_000_000, description="Shots averaged for the dark at scan start.")
 
+    def instrument_sections(self) -> dict[str, Any]:
+        """The instrument sections present in this bench, by kind (the delay generator only when configured)."""
+        out: dict[str, Any] = {k: getattr(self, k) for k in ("delay_axis", "chopper", "shutter", "detector")}
+        if self.delay_generator is not None:
+            out["delay_generator"] = self.delay_generator
+        return out
+
     def uses_simulator(self) -> bool:
-        return any(getattr(self, k).driver == "sim" for k in ("delay_axis", "chopper", "shutter", "detector"))
+        return any(section.driver == "sim" for section in self.instrument_sections().values())
 
 
 class LinearSegment(_Strict):
@@ -197,6 +232,8 @@ class ScanSettings(_Strict):
     delays: list[Segment] = Field(min_length=1, description="Delay grid: linear, log and list segments, merged.")
     shots_per_point: int = Field(ge=2, le=100_000_000, description="Laser shots per delay point and sweep.")
     sweeps: int = Field(1, ge=1, le=100_000, description="Passes over the whole delay grid.")
+    axis: Literal["stage", "generator"] = Field("stage", description="What sets the delay: the delay stage, or the "
+                                                "bench's delay generator (the stage then waits at time zero).")
     order: Literal["ascending", "descending", "alternating", "shuffled"] = Field("alternating")
     seed: int | None = Field(None, description="Seed of the shuffled order (and of the simulator when it has none).")
     output: str = Field("shotpair-scan.h5", description="Output HDF5 file; relative paths start at the working folder. An existing file is never overwritten: a number is added.")

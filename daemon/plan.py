@@ -65,6 +65,11 @@ class ScanPlan:
     dark_shots: int
     repetition_rate_hz: float
     velocity_mm_per_s: float
+    #: What sets the delay: "stage" (positions_mm) or "generator" (generator_settings_ps; the stage then
+    #: waits at time zero, so every positions_mm is time_zero_mm).
+    axis: str = "stage"
+    generator_settings_ps: np.ndarray | None = None
+    settle_s: float = 0.0
 
     @property
     def n_points(self) -> int:
@@ -99,11 +104,42 @@ class ScanPlan:
 
     def estimated_duration_s(self) -> float:
         """Shots at the repetition rate plus the moves (a lower bound: settling and readout come on top)."""
-        return self.total_shots / self.repetition_rate_hz + self.travel_time_s()
+        return self.total_shots / self.repetition_rate_hz + self.travel_time_s() + self.total_points * self.settle_s
+
+
+def _generator_plan(scan: ScanSettings, bench: BenchSettings, config_path: str) -> ScanPlan:
+    gen = bench.delay_generator
+    if gen is None:
+        raise ConfigError("the scan asks for the delay generator but the bench has none", file=config_path,
+                          key_path="scan.axis", value=scan.axis, allowed="stage, or add a [bench.delay_generator]")
+    low_ps, high_ps = gen.delay_range_ps()
+    for i, segment in enumerate(scan.delays):
+        d = _segment_delays(segment)
+        bad = d[(d < low_ps - _SAME_DELAY_PS) | (d > high_ps + _SAME_DELAY_PS)]
+        if bad.size:
+            raise ConfigError(
+                f"{bad.size} delay(s) outside the delay generator's range, from {bad.min():.6g} to {bad.max():.6g} ps",
+                file=config_path, key_path=f"scan.delays[{i}]",
+                allowed=(f"{low_ps:.6g} to {high_ps:.6g} ps with range_ps = {list(gen.range_ps)}, "
+                         f"time_zero_ps = {gen.time_zero_ps}"))
+    grid = build_grid_ps(list(scan.delays))
+    settings = np.clip(grid + gen.time_zero_ps, *gen.range_ps)
+    positions = np.full(grid.size, bench.delay_axis.time_zero_mm)
+    orders = sweep_orders(grid.size, scan.sweeps, scan.order, scan.seed)
+    dark = bench.dark_shots if bench.detector.dark_counts is None else 0
+    return ScanPlan(grid, positions, orders, scan.shots_per_point, dark, bench.repetition_rate_hz,
+                    bench.delay_axis.velocity_mm_per_s, axis="generator", generator_settings_ps=settings,
+                    settle_s=gen.settle_s)
 
 
 def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<config>") -> ScanPlan:
-    """Build the plan; raises ConfigError if a delay lies outside what the stage travel can reach."""
+    """Build the plan; raises ConfigError if a delay lies outside what the delay axis can reach.
+
+    With ``scan.axis = "stage"`` the delays become stage positions; with ``"generator"`` they become
+    settings of the delay generator (delay + its time_zero_ps) and the stage waits at time zero.
+    """
+    if scan.axis == "generator":
+        return _generator_plan(scan, bench, config_path)
     line = bench.delay_axis.delay_line()
     low_ps, high_ps = line.delay_range_ps(bench.delay_axis.travel_mm)
     for i, segment in enumerate(scan.delays):

@@ -25,6 +25,7 @@ from shotpair.drivers.errors import InstrumentError, LimitError, ShotpairError
 from . import engine
 from .bench import Bench
 from .config import LoadedConfig, ScanSettings
+from .delay_drive import DelayDrive
 from .events import (BlockProgress, Event, LogEvent, MoveDone, PointSaved, ScanEnded, ScanStarted, StateChanged,
                      SweepDone)
 from .plan import ScanPlan
@@ -233,6 +234,7 @@ class Runner:
         state, reason, done = "aborted", "", 0
         problems: list[str] = []
         try:
+            self._drive = DelayDrive(self.bench, job.plan)
             store = self._create_store(job)
             self._emit(ScanStarted(job.scan_id, str(store.path), job.plan.n_points, job.plan.sweeps,
                                    job.plan.shots_per_point, job.plan.estimated_duration_s()), must=True)
@@ -282,14 +284,15 @@ class Runner:
         return ScanStore.create(
             job.output, scan_id=job.scan_id, title=job.scan.title, delays_ps=job.plan.delays_ps,
             wavelengths_nm=b.settings.detector.wavelengths_nm(), sweeps=job.plan.sweeps, orders=job.plan.orders,
-            config_text=job.config.text, instruments=b.identities(), extra={"bench_name": b.settings.name})
+            config_text=job.config.text, instruments=b.identities(), axis_kind=self._drive.kind,
+            extra={"bench_name": b.settings.name})
 
     def _prepare(self, job: ScanJob, store: ScanStore) -> engine.DarkFrame:
         b, s = self.bench, self.bench.settings
-        if job.plan.delays_ps.size and b.simulation is not None:
-            store.write_truth(b.simulation.truth_delta_od(job.plan.delays_ps), _TRUTH_NOTE)
-        if s.delay_axis.home_before_scan and not b.delay_axis.is_homed:
-            b.delay_axis.home(timeout_s=s.delay_axis.settle_timeout_s)
+        model = b.truth()
+        if job.plan.delays_ps.size and model is not None:
+            store.write_truth(model.truth_delta_od(job.plan.delays_ps), _TRUTH_NOTE)
+        self._drive.prepare()
         freq = s.chopper.frequency_hz or s.repetition_rate_hz / 2.0
         b.chopper.set_frequency_hz(freq)
         b.chopper.set_phase_deg(s.chopper.phase_deg)
@@ -325,14 +328,12 @@ class Runner:
             use_reference=s.detector.has_reference)
         # One running merge per grid point (not every sweep's result): memory stays at one result per point.
         combined_at: list[engine.PointResult | None] = [None] * plan.n_points
-        line = s.delay_axis.delay_line()
         done, t0, shots_total = 0, time.monotonic(), 0
         self.paused_s = 0.0
         for sweep, order in enumerate(plan.orders):
             for k, index in enumerate(order):
                 self._poll_commands(job.scan_id)
-                b.delay_axis.move_to_mm(float(plan.positions_mm[index]))
-                readback = b.delay_axis.wait_settled(timeout_s=s.delay_axis.settle_timeout_s)
+                readback = self._drive.go(int(index))
                 acc = engine.PointAccumulator(dark, settings)
                 got = 0
                 last_live = time.monotonic()
@@ -355,8 +356,9 @@ class Runner:
                 previous = combined_at[index]
                 combined = result if previous is None else engine.PointResult.combine([previous, result])
                 combined_at[index] = combined
-                store.write_point(sweep, int(index), result, combined, position_mm=readback,
-                                  delay_readback_ps=float(line.delay_ps(readback)), measured_at_s=time.time())
+                store.write_point(sweep, int(index), result, combined, position_mm=readback.position_mm,
+                                  delay_readback_ps=readback.delay_ps, generator_ps=readback.generator_ps,
+                                  measured_at_s=time.time())
                 done += 1
                 shots_total += got
                 elapsed = time.monotonic() - t0 - self.paused_s

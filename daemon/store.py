@@ -151,6 +151,8 @@ class ScanStore:
         pos.attrs["units"] = "mm"
         dly = dg.create_dataset("delay_readback", data=np.full((s, n), np.nan))
         dly.attrs["units"] = "ps"
+        gen = dg.create_dataset("generator_setting", data=np.full((s, n), np.nan))
+        gen.attrs.update({"units": "ps", "long_name": "delay generator read-back (NaN when the stage sets the delay)"})
         t = dg.create_dataset("measured_at", data=np.full((s, n), np.nan))
         t.attrs.update({"units": "s", "long_name": "end of the point, seconds since 1970-01-01 UTC"})
         dg.create_dataset("order", data=np.stack(orders).astype(np.int64))
@@ -194,7 +196,7 @@ class ScanStore:
         self._f.flush()
 
     def write_point(self, sweep: int, index: int, result: Any, combined: Any, *, position_mm: float,
-                    delay_readback_ps: float, measured_at_s: float) -> None:
+                    delay_readback_ps: float, measured_at_s: float, generator_ps: float = float("nan")) -> None:
         """Write one finished point of one sweep and the running average over sweeps, then flush."""
         sw, dg, main = self._e["sweeps"], self._e["diagnostics"], self._e["delta_od"]
         sw["delta_od"][sweep, index] = result.delta_od
@@ -208,6 +210,7 @@ class ScanStore:
             dg[name][sweep, index] = int(getattr(result, name))
         dg["stage_position"][sweep, index] = position_mm
         dg["delay_readback"][sweep, index] = delay_readback_ps
+        dg["generator_setting"][sweep, index] = generator_ps
         dg["measured_at"][sweep, index] = measured_at_s
         main["delta_od"][index] = combined.delta_od
         main["delta_od_errors"][index] = combined.delta_od_error
