@@ -25,6 +25,7 @@ from .plan import ScanPlan, make_plan
 from .progress import ProgressPrinter, format_duration
 from .monitor import add_monitor_command
 from .remote import add_remote_commands
+from .simulate_cmd import add_simulate_command
 from .runner import ScanJob, new_scan_id
 from .server import Daemon
 from .store import software_version, unique_path
@@ -267,6 +268,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     add_remote_commands(sub)
     add_monitor_command(sub)
+    add_simulate_command(sub)
 
     p = sub.add_parser("show", help="summarise a scan file: state, grid, ΔOD range, errors, rejected pairs")
     p.add_argument("file", help="an HDF5 file written by shotpair")
