@@ -16,6 +16,12 @@ from typing import Any
 from .errors import TransportError
 from .transports import Address, Transport
 
+try:  # pyserial's flush() on POSIX calls termios.tcdrain, which raises termios.error (EIO on a hung-up line)
+    from termios import error as _TermiosError
+except ImportError:  # not POSIX
+    class _TermiosError(Exception):  # type: ignore[no-redef]
+        """Never raised: stands in for termios.error where there is no termios."""
+
 __all__ = ["SerialSettings", "SerialTransport", "from_address", "serial_settings"]
 
 PARITIES = ("N", "E", "O", "M", "S")
@@ -133,7 +139,7 @@ class SerialTransport(Transport):
         except serial.SerialTimeoutException as exc:
             raise TransportError(f"write to {self.port} did not finish within {self.write_timeout_s:g} s "
                                  "(flow control?)", instrument=self.name) from exc
-        except (serial.SerialException, OSError) as exc:
+        except (serial.SerialException, OSError, _TermiosError) as exc:
             raise TransportError(f"write to {self.port} failed: {exc}", instrument=self.name) from exc
 
     def _recv(self, max_bytes: int, timeout_s: float, terminator: bytes | None) -> bytes:
