@@ -28,7 +28,7 @@ import numpy as np
 
 from shotpair.drivers.base import ShotBlock
 from shotpair.drivers.scpi_devices import make_detector
-from shotpair.simulators.wire.devices import encode_shot_record
+from shotpair.drivers.shot_record import encode_shot_block
 from shotpair.simulators.wire.scpi_device import ScpiDevice
 from shotpair.simulators.wire.tcp_server import ScpiTcpServer
 
@@ -40,7 +40,7 @@ def cached_record(n: int, pixels: int, seed: int = 1) -> bytes:
     frame = np.arange(n, dtype=np.int64)
     block = ShotBlock(counts=rng.integers(0, 65535, (n, pixels), dtype=np.uint16), pump_on=frame % 2 == 0,
                       frame_id=frame)
-    return bytes(encode_shot_record(block, four_state=False))
+    return bytes(encode_shot_block(block, four_state=False))
 
 
 def make_server(pixels: int, record: bytes) -> ScpiTcpServer:

@@ -30,17 +30,8 @@ from shotpair.drivers.errors import (
     StateError,
     TransportError,
 )
-from shotpair.drivers.scpi_devices import (
-    RECORD_MAGIC,
-    ScpiChopper,
-    ScpiDelayAxis,
-    ScpiDelayGenerator,
-    ScpiDetector,
-    ScpiShutter,
-    decode_shot_record,
-    encode_shot_record,
-    record_bytes,
-)
+from shotpair.drivers.scpi_devices import ScpiChopper, ScpiDelayAxis, ScpiDelayGenerator, ScpiDetector, ScpiShutter
+from shotpair.drivers.shot_record import RECORD_MAGIC, decode_shot_record, encode_shot_record, record_bytes
 from shotpair.drivers.scpi_instrument import ScpiCommandError, ScpiRangeError
 from shotpair.drivers.transports import pipe_pair
 

@@ -26,7 +26,8 @@ from shotpair.drivers.scpi import NEED_DATA, ReplyReader, Resync, decode_block, 
 from shotpair.drivers.transports import make_transport
 from shotpair.simulators.bench import BenchCalibration, VirtualBench
 from shotpair.simulators.settings import NoiseSwitches, SimulationSettings, StageSettings
-from shotpair.simulators.wire.devices import encode_shot_record, make_devices, max_shots, record_length
+from shotpair.drivers.shot_record import encode_shot_block, max_shots, record_bytes
+from shotpair.simulators.wire.devices import make_devices
 from shotpair.simulators.wire.scpi_device import ScpiDevice
 from shotpair.simulators.wire.tcp_server import ScpiTcpServer
 
@@ -431,7 +432,7 @@ def test_block_framing_read_by_the_driver_codec(serve: Callable[..., Served]) ->
             replies.append(r)
     # The codec takes exactly the announced bytes as the block, then the next reply as text.
     assert isinstance(replies[0], bytes) and replies[0][:4] == b"SPB1"
-    assert len(replies[0]) == record_length(50, PIXELS, 0)
+    assert len(replies[0]) == record_bytes(50, PIXELS, 0)
     assert replies[1] == "1"
 
 
@@ -453,7 +454,7 @@ def test_encode_shot_record_is_fast_enough_for_10khz_1024px() -> None:
     block = ShotBlock(counts=rng.integers(0, 65535, (n, px), dtype=np.uint16), pump_on=np.arange(n) % 2 == 0,
                       frame_id=np.arange(n, dtype=np.int64))
     t0 = time.perf_counter()
-    buf = encode_shot_record(block, four_state=False)
+    buf = encode_shot_block(block, four_state=False)
     elapsed = time.perf_counter() - t0
     rec = _decode_record(bytes(buf[2 + 8:]))
     np.testing.assert_array_equal(rec["counts"], block.counts)
@@ -537,7 +538,7 @@ def test_query_interrupted_discards_the_unread_reply(serve: Callable[..., Served
     s = serve(settings=settings)
     c = s.connect("detector", rcvbuf=4096)  # a small window: most of a large reply stays at the simulator
     n = 200_000
-    full = record_length(n, PIXELS, 0)  # 27 MB, more than any socket buffer holds
+    full = record_bytes(n, PIXELS, 0)  # 27 MB, more than any socket buffer holds
     c.send(f"ACQ:SHOT? {n}\n".encode())
     head = c.exact(2)
     assert head == b"#8"  # the block started
@@ -590,7 +591,7 @@ def test_real_transports_reach_the_servers(serve: Callable[..., Served]) -> None
         head = visa.read_exact(2, TIMEOUT_S)
         length = int(visa.read_exact(int(head[1:2]), TIMEOUT_S))
         payload = visa.read_exact(length + 1, TIMEOUT_S)
-        assert payload[:4] == b"SPB1" and payload[-1:] == b"\n" and length == record_length(20, PIXELS, 0)
+        assert payload[:4] == b"SPB1" and payload[-1:] == b"\n" and length == record_bytes(20, PIXELS, 0)
     finally:
         tcp.close()
         visa.close()

@@ -17,17 +17,15 @@ from __future__ import annotations
 
 import contextlib
 import math
-import struct
 import threading
 from typing import Iterator, Mapping
 
 import numpy as np
 from shotpair.drivers.base import ShotBlock
 from shotpair.drivers.errors import InstrumentError, LimitError, StateError
-from shotpair.drivers.scpi import DEFAULT_MAX_BLOCK_BYTES
+from shotpair.drivers.shot_record import encode_shot_block, max_shots
 from shotpair.simulators.bench import VirtualBench
 from shotpair.simulators.instruments import (
-    MAX_SHOTS_PER_BLOCK,
     POLL_S,
     SimChopper,
     SimDelayAxis,
@@ -43,7 +41,6 @@ __all__ = [
     "DEFAULT_LATENCY_S",
     "SHUTTER_S",
     "REALTIME_CHUNK_S",
-    "RECORD_MAGIC",
     "BenchDevice",
     "StageDevice",
     "ChopperDevice",
@@ -51,9 +48,6 @@ __all__ = [
     "SpectrometerDevice",
     "DelayGeneratorDevice",
     "make_devices",
-    "encode_shot_record",
-    "record_length",
-    "max_shots",
 ]
 
 #: The devices of a bench, named as the bench file names the instruments.
@@ -74,62 +68,6 @@ SHUTTER_S = 0.010
 #: In real-time mode a block is exposed in parts of at most this duration, in s, so the bench lock is
 #: free in between and a stop is seen quickly.
 REALTIME_CHUNK_S = 0.02
-
-#: First four bytes of a shot record.
-RECORD_MAGIC = b"SPB1"
-
-_RECORD_HEADER = struct.Struct("<4sIIII")  # magic, n, pixels, ref_width, flags
-
-
-def record_length(n: int, pixels: int, ref_width: int) -> int:
-    """Bytes of a shot record of ``n`` shots: 20 + 9 n + 2 n (pixels + ref_width) (docs/instruments.md)."""
-    return _RECORD_HEADER.size + 9 * n + 2 * n * (pixels + ref_width)
-
-
-def max_shots(pixels: int, ref_width: int) -> int:
-    """Most shots one ``ACQuire:SHOTs?`` may ask for: the simulator's limit, or what fits in the largest
-    block the driver-side reader accepts (drivers/scpi.py ``DEFAULT_MAX_BLOCK_BYTES``)."""
-    per_shot = 9 + 2 * (pixels + ref_width)
-    return int(min(MAX_SHOTS_PER_BLOCK, (DEFAULT_MAX_BLOCK_BYTES - _RECORD_HEADER.size) // per_shot))
-
-
-def encode_shot_record(block: ShotBlock, *, four_state: bool) -> bytearray:
-    """The ``SPB1`` record of a block as one definite-length block ``#<d><len><record>`` (no terminator).
-
-    Built in one buffer with numpy views (one copy of each array, no per-shot loop). The state byte has
-    bit 0 for pump on and bit 1 for probe on (always set when the probe is not chopped).
-
-    Raises
-    ------
-    ValueError
-        If the record would need more than nine length digits.
-    """
-    counts = block.counts
-    n, pixels = counts.shape
-    reference = block.reference
-    ref_width = 0 if reference is None else int(reference.shape[1])
-    length = record_length(n, pixels, ref_width)
-    digits = str(length).encode("ascii")
-    if len(digits) > 9:
-        raise ValueError(f"a shot record of {length} bytes does not fit a definite-length block")
-    head = b"#" + str(len(digits)).encode("ascii") + digits
-    buf = bytearray(len(head) + length)
-    buf[:len(head)] = head
-    at = len(head)
-    _RECORD_HEADER.pack_into(buf, at, RECORD_MAGIC, n, pixels, ref_width, 1 if four_state else 0)
-    at += _RECORD_HEADER.size
-    np.frombuffer(buf, dtype="<i8", count=n, offset=at)[:] = block.frame_id
-    at += 8 * n
-    state = np.frombuffer(buf, dtype=np.uint8, count=n, offset=at)
-    state[:] = block.pump_on
-    state |= 2 if block.probe_on is None else block.probe_on.astype(np.uint8) << 1
-    at += n
-    np.frombuffer(buf, dtype="<u2", count=n * pixels, offset=at).reshape(n, pixels)[:] = counts
-    at += 2 * n * pixels
-    if reference is not None:
-        np.frombuffer(buf, dtype="<u2", count=n * ref_width, offset=at).reshape(n, ref_width)[:] = reference
-    return buf
-
 
 @contextlib.contextmanager
 def _device_errors() -> Iterator[None]:
@@ -300,7 +238,7 @@ class SpectrometerDevice(BenchDevice):
                 block = bench.generate_shots(n)
         else:
             block = self._acquire_paced(n, args.stop)
-        return encode_shot_record(block, four_state=bench.settings.probe.chopped)
+        return encode_shot_block(block, four_state=bench.settings.probe.chopped)
 
     def _acquire_paced(self, n: int, stop: threading.Event | None) -> ShotBlock:
         bench = self.bench

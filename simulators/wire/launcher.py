@@ -249,7 +249,12 @@ class WireBench:
     def _options(self, name: str) -> dict[str, Any]:
         if name in self._serial_options:
             return dict(self._serial_options[name])
-        return {"address": self.endpoints[name].address}
+        options: dict[str, Any] = {"address": self.endpoints[name].address}
+        if name == "delay_axis" and self.realtime:
+            # A pending *OPC? holds every later command on its connection, as on real instruments: poll
+            # the moving state instead, so a stop is carried out at once.
+            options["poll_interval_s"] = 0.01
+        return options
 
     def config_document(self) -> dict[str, Any]:
         """The bench file as a TOML-ready dict: the original sections with drivers and addresses replaced."""
