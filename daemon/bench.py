@@ -18,7 +18,7 @@ from shotpair.drivers.errors import ConfigError, InstrumentError, ShotpairError
 from .config import BenchSettings
 from shotpair.simulators.settings import SimulationSettings
 
-__all__ = ["Bench", "build_bench"]
+__all__ = ["Bench", "build_bench", "calibration_for"]
 
 log = logging.getLogger(__name__)
 
@@ -105,6 +105,31 @@ class Bench:
         self.connected.clear()
 
 
+def calibration_for(settings: BenchSettings) -> Any:
+    """The simulated bench's :class:`~shotpair.simulators.bench.BenchCalibration` from a validated bench
+    section (pixels, wavelengths, detector constants, delay line, travel, delay generator)."""
+    from shotpair.simulators.bench import BenchCalibration
+
+    det = settings.detector
+    generator: dict[str, Any] = {}
+    if settings.delay_generator is not None:
+        generator = {"generator_time_zero_ps": settings.delay_generator.time_zero_ps,
+                     "generator_range_ps": tuple(settings.delay_generator.range_ps)}
+    return BenchCalibration(
+        pixels=det.pixels,
+        wavelengths_nm=det.wavelengths_nm(),
+        repetition_rate_hz=settings.repetition_rate_hz,
+        gain_e_per_count=det.gain_e_per_count,
+        read_noise_e=det.read_noise_e,
+        dark_counts=det.dark_counts if det.dark_counts is not None else 500.0,
+        saturation_counts=det.saturation_counts,
+        has_reference=det.has_reference,
+        delay_line=settings.delay_axis.delay_line(),
+        travel_mm=settings.delay_axis.travel_mm,
+        **generator,
+    )
+
+
 def build_bench(settings: BenchSettings, simulation: SimulationSettings | None = None, *, realtime: bool = True,
                 seed: int | None = None, config_path: str | None = None) -> Bench:
     """Create (not connect) the instruments named in the bench settings.
@@ -116,27 +141,12 @@ def build_bench(settings: BenchSettings, simulation: SimulationSettings | None =
     """
     virtual = truth_model = None
     if settings.uses_simulator() or simulation is not None:
-        from shotpair.simulators.bench import BenchCalibration, VirtualBench
+        from shotpair.simulators.bench import VirtualBench
 
         sim = simulation or SimulationSettings()
         if seed is not None and sim.seed is None:
             sim = sim.model_copy(update={"seed": seed})
-        det = settings.detector
-        calibration = BenchCalibration(
-            pixels=det.pixels,
-            wavelengths_nm=det.wavelengths_nm(),
-            repetition_rate_hz=settings.repetition_rate_hz,
-            gain_e_per_count=det.gain_e_per_count,
-            read_noise_e=det.read_noise_e,
-            dark_counts=det.dark_counts if det.dark_counts is not None else 500.0,
-            saturation_counts=det.saturation_counts,
-            has_reference=det.has_reference,
-            delay_line=settings.delay_axis.delay_line(),
-            travel_mm=settings.delay_axis.travel_mm,
-            **({} if settings.delay_generator is None else {
-                "generator_time_zero_ps": settings.delay_generator.time_zero_ps,
-                "generator_range_ps": settings.delay_generator.range_ps}),
-        )
+        calibration = calibration_for(settings)
         model = VirtualBench(sim, calibration, realtime=realtime)
         if settings.uses_simulator():
             virtual = model

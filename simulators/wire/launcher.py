@@ -27,15 +27,16 @@ from pathlib import Path
 from types import ModuleType
 from typing import Any, Mapping
 
-from shotpair.daemon.config import BenchSettings, LoadedConfig
+from shotpair.daemon.bench import calibration_for
+from shotpair.daemon.config import LoadedConfig
 from shotpair.drivers.errors import ConfigError, StorageError, TransportError
-from shotpair.simulators.bench import BenchCalibration, VirtualBench
+from shotpair.simulators.bench import VirtualBench
 from shotpair.simulators.settings import SimulationSettings
 
 from .devices import DEFAULT_LATENCY_S, DEVICE_NAMES, BenchDevice, make_devices
 from .tcp_server import ScpiTcpServer
 
-__all__ = ["SERIAL_KINDS", "Endpoint", "WireBench", "calibration_for", "dumps_toml"]
+__all__ = ["SERIAL_KINDS", "Endpoint", "WireBench", "dumps_toml"]
 
 #: Instruments served as the made-up serial controller when its modules are there.
 SERIAL_KINDS = ("delay_axis", "chopper", "shutter")
@@ -59,29 +60,6 @@ def _serial_modules() -> tuple[ModuleType, ModuleType] | None:
                     ", ".join(missing) or "not a POSIX system")
         return None
     return serial_controller, pty_server
-
-
-def calibration_for(settings: BenchSettings) -> BenchCalibration:
-    """The virtual bench's calibration from a validated ``[bench]`` section (as daemon/bench.py builds it,
-    plus the delay generator's time zero and range)."""
-    det = settings.detector
-    generator: dict[str, Any] = {}
-    if settings.delay_generator is not None:
-        generator = {"generator_time_zero_ps": settings.delay_generator.time_zero_ps,
-                     "generator_range_ps": tuple(settings.delay_generator.range_ps)}
-    return BenchCalibration(
-        pixels=det.pixels,
-        wavelengths_nm=det.wavelengths_nm(),
-        repetition_rate_hz=settings.repetition_rate_hz,
-        gain_e_per_count=det.gain_e_per_count,
-        read_noise_e=det.read_noise_e,
-        dark_counts=det.dark_counts if det.dark_counts is not None else 500.0,
-        saturation_counts=det.saturation_counts,
-        has_reference=det.has_reference,
-        delay_line=settings.delay_axis.delay_line(),
-        travel_mm=settings.delay_axis.travel_mm,
-        **generator,
-    )
 
 
 @dataclass(frozen=True)
