@@ -112,7 +112,7 @@ def _assert_bench_safe(wb):
     assert not vb.stage.is_moving(vb.now_s())
 
 
-@pytest.mark.parametrize("exit_path", ["detector disconnects", "abort"])
+@pytest.mark.parametrize("exit_path", ["scan ends", "detector disconnects", "abort"])
 def test_every_exit_leaves_the_simulated_bench_safe(wire, tmp_path, exit_path):
     scan, bench_file, wb = wire
     runner, bench = _start_runner(scan, bench_file, tmp_path / "safe.h5")
@@ -121,20 +121,21 @@ def test_every_exit_leaves_the_simulated_bench_safe(wire, tmp_path, exit_path):
         assert wb.bench.shutter_open  # mid-scan: open, so the check below can fail
         if exit_path == "abort":
             runner.abort("test abort")
-        else:
+        elif exit_path == "detector disconnects":
             wb.inject("detector", "disconnect", 1)
         end = _until(runner, lambda ev: isinstance(ev, ScanEnded))
     finally:
         runner.close()
         bench.disconnect()
-    assert end.state == "aborted"
+    expected_state = "complete" if exit_path == "scan ends" else "aborted"
+    assert end.state == expected_state, end.reason
     if exit_path == "abort":
         assert end.reason == "test abort"
-    else:
+    elif exit_path == "detector disconnects":
         assert "detector" in end.reason
     _assert_bench_safe(wb)
     with h5py.File(tmp_path / "safe.h5", "r") as f:
-        assert f["entry/state"][()].decode() == "aborted"
+        assert f["entry/state"][()].decode() == expected_state
         assert f["entry/sweeps/completed"][()].sum() >= 1  # what was measured is kept
 
 
@@ -157,3 +158,24 @@ def test_move_outside_controller_limits_is_refused_before_any_byte(small_scan, t
             assert wb.bench.stage.target_mm() == before
         finally:
             bench.disconnect()
+
+
+def test_generator_scan_over_the_wire(tmp_path):
+    """The electronic delay axis through the scpi delay-generator driver (pyvisa-py) against the simulator."""
+    from test_generator_scan import CONFIG, TIME_ZERO_PS
+
+    scan = tmp_path / "gen.toml"
+    scan.write_text(CONFIG.format(t0=TIME_ZERO_PS, output=tmp_path / "gen.h5"))
+    with WireBench(load_config(scan), realtime=False) as wb:
+        bench_file = wb.write_config(tmp_path / "gen-bench.toml")
+        assert main(["run", str(scan), "--bench", str(bench_file)]) == 0
+        assert wb.bench.generator_setting_ps == pytest.approx(TIME_ZERO_PS + 8.0e6)  # the last point, ascending
+    with h5py.File(tmp_path / "gen.h5", "r") as f:
+        e = f["entry"]
+        assert e["delay_axis_kind"][()].decode() == "electronic delay generator"
+        delays = e["delta_od/delay"][()]
+        np.testing.assert_allclose(e["diagnostics/generator_setting"][()][0], delays + TIME_ZERO_PS, rtol=1e-12)
+        dod, err, truth = (e["delta_od/delta_od"][()], e["delta_od/delta_od_errors"][()],
+                           e["simulation_truth/delta_od"][()])
+    value, k = chi2(dod, truth, err)
+    assert abs(value - 1.0) < 5 * np.sqrt(2.0 / k), value
