@@ -175,8 +175,10 @@ def main(argv: list[str] | None = None) -> int:
     print(f"stream      {sum(listener.counts.values()):,} messages received "
           f"({', '.join(f'{k} {v}' for k, v in sorted(listener.counts.items()))}); {listener.lost} lost (seq jumps); "
           f"daemon dropped events {final.get('dropped_events')}")
-    print(f"memory      RSS {mem[0]:.1f} MiB at start, {mem[-1]:.1f} MiB at end, max {max(mem):.1f} MiB "
-          f"({len(mem)} samples)")
+    quarter = max(1, len(mem) // 4)
+    print(f"memory      RSS {mem[0]:.1f} MiB at start, {mem[-1]:.1f} MiB at end, max {max(mem):.1f} MiB; median of "
+          f"the first quarter {statistics.median(mem[:quarter]):.1f} MiB, of the last {statistics.median(mem[-quarter:]):.1f} "
+          f"MiB ({len(mem)} samples)")
     print(f"control     status round trip median {np.median(lat_ms):.2f} ms, p99 {np.percentile(lat_ms, 99):.2f} ms, "
           f"max {lat_ms.max():.2f} ms ({lat_ms.size} requests)")
     return 0
