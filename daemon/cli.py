@@ -11,18 +11,21 @@ import contextlib
 import logging
 import signal
 import sys
-from typing import Callable, Iterator, Sequence
+from typing import Any, Callable, Iterator, Sequence
 
 import numpy as np
 
 from shotpair.drivers.errors import ConfigError, ShotpairError, StorageError
 
-from .bench import build_bench
+from .auth import ServerKeys, server_keys_for
+from .bench import Bench, build_bench
+from .client import DEFAULT_CONTROL
 from .instrument_report import format_report, probe_instruments
-from .config import BenchSettings, LoadedConfig, check_output, load_config
+from .config import BenchSettings, LoadedConfig, StreamSettings, check_output, load_config
 from .events import LogEvent, PointSaved, ScanEnded, ScanStarted
 from .plan import ScanPlan, make_plan
 from .progress import ProgressPrinter, format_duration
+from .keys_cmd import add_keys_command
 from .monitor import add_monitor_command
 from .remote import add_remote_commands
 from .simulate_cmd import add_simulate_command
@@ -128,6 +131,16 @@ def _handling_signals(handler: Callable[[int, object], None]) -> Iterator[None]:
             signal.signal(sig, old)
 
 
+def _server_keys(args: argparse.Namespace, bench_cfg: LoadedConfig, stream: StreamSettings) -> ServerKeys | None:
+    """The daemon's CURVE keys for the endpoints it will bind (--data/--control win over [stream]), or None.
+    Called before the bench is built: an open endpoint without keys, or a bad keys folder, moves nothing."""
+    data, control = getattr(args, "data", None), getattr(args, "control", None)
+    endpoints = {"--data" if data else "stream.data_endpoint": data or stream.data_endpoint,
+                 "--control" if control else "stream.control_endpoint": control or stream.control_endpoint}
+    return server_keys_for(stream.auth.enabled, stream.auth.keys_dir, endpoints, config_path=bench_cfg.path,
+                           cli_keys_dir=getattr(args, "keys", None))
+
+
 def _bind(daemon: Daemon, args: argparse.Namespace, *, fallback: bool) -> None:
     try:
         daemon.bind(getattr(args, "data", None), getattr(args, "control", None))
@@ -147,11 +160,12 @@ def cmd_run(args: argparse.Namespace) -> int:
     check_output(target, cfg.path, "--output" if args.output else "scan.output")
     output = unique_path(target)
     stream = bench_cfg.config.stream or cfg.stream
+    keys = _server_keys(args, bench_cfg if bench_cfg.config.stream else cfg, stream)
     bench = build_bench(bench_cfg.bench, (bench_cfg.config.simulation or cfg.config.simulation),
                         realtime=not args.fast, seed=scan.seed, config_path=bench_cfg.path)
     print(describe_plan(cfg, bench_cfg, plan, str(output)), file=sys.stderr)
     bench.connect()
-    daemon = Daemon(bench, bench_cfg, stream)
+    daemon = Daemon(bench, bench_cfg, stream, keys)
     try:
         _bind(daemon, args, fallback=True)
         print(f"live data on {daemon.data_endpoint}, control on {daemon.control_endpoint} "
@@ -196,16 +210,130 @@ def cmd_run(args: argparse.Namespace) -> int:
     return EXIT_INTERRUPTED if interrupted else EXIT_SCAN_FAILED
 
 
+def _serve_job(args: argparse.Namespace, bench: Bench, bench_cfg: LoadedConfig, stream: StreamSettings,
+               keys: ServerKeys | None, job: ScanJob, verb: str = "writing") -> int:
+    """Serve one scan on a built bench until it ends (the body `resume` runs; `run` does the same inline):
+    live data and control on the stream endpoints, progress on stderr, Ctrl-C or SIGTERM stop it safely.
+    Returns the exit code: 0 complete, 130 interrupted, 1 failed."""
+    bench.connect()
+    daemon = Daemon(bench, bench_cfg, stream, keys)
+    try:
+        _bind(daemon, args, fallback=True)
+        print(f"live data on {daemon.data_endpoint}, control on {daemon.control_endpoint} "
+              "(`shotpair monitor` can attach)", file=sys.stderr, flush=True)
+        progress = ProgressPrinter()
+        outcome: dict[str, object] = {}
+        interrupted: list[str] = []
+
+        def on_event(ev: object) -> None:
+            if isinstance(ev, ScanStarted):
+                print(f"{verb} {ev.path}", file=sys.stderr, flush=True)
+            elif isinstance(ev, PointSaved):
+                outcome["last"] = ev
+                progress.point(ev)
+            elif isinstance(ev, LogEvent):
+                progress.finish()
+                print(f"{ev.level}: {ev.message}", file=sys.stderr, flush=True)
+            elif isinstance(ev, ScanEnded):
+                progress.finish()
+                print(_summary(ev, outcome.get("last")), file=sys.stderr, flush=True)  # type: ignore[arg-type]
+                outcome["state"] = ev.state
+
+        def on_signal(signum: int, frame: object) -> None:
+            if not interrupted:
+                progress.finish()
+                print("interrupted: stopping safely, the file is kept (marked aborted)...", file=sys.stderr)
+                daemon.runner.abort("interrupted by the user (Ctrl-C)" if signum == signal.SIGINT
+                                    else f"stopped by {signal.Signals(signum).name}")
+            interrupted.append(signal.Signals(signum).name)
+
+        with _handling_signals(on_signal):
+            daemon.listeners.append(on_event)
+            daemon.exit_when_idle = True
+            daemon.start_job(job)
+            daemon.serve()
+    finally:
+        daemon.close()
+        bench.disconnect()
+    if outcome.get("state") == "complete":
+        return EXIT_OK
+    return EXIT_INTERRUPTED if interrupted else EXIT_SCAN_FAILED
+
+
+def cmd_resume(args: argparse.Namespace) -> int:
+    """Continue an interrupted scan in its file: checks everything first, then re-measures the dark and
+    measures the points that are not in the file yet, in the scan's own order."""
+    from .resume import copy_for_resume, prepare_resume, resumed_simulation
+    from .store import ScanStore
+
+    rp = prepare_resume(args.file, bench_path=args.bench)
+    if args.output:
+        target = copy_for_resume(rp.path, args.output)
+        print(f"copied {rp.path} to {target}; the copy is resumed, the original left as it is", file=sys.stderr)
+        rp = prepare_resume(target, bench_path=args.bench)
+    for note in rp.notes:
+        print(f"warning: {note}", file=sys.stderr)
+    if rp.next_point is None:
+        # every point is in (the run ended between its last point and its end mark): no instrument needed
+        problems = ScanStore.open_existing(rp.path).finish("complete")
+        for p in problems:
+            print(f"shotpair: error: {p}", file=sys.stderr)
+        print(f"scan complete: all {rp.points_total} point(s) were already in {rp.path}", file=sys.stderr)
+        return EXIT_SCAN_FAILED if problems else EXIT_OK
+    cfg, job = rp.config, rp.job
+    scan = cfg.require_scan()
+    keys = _server_keys(args, cfg, cfg.stream)
+    bench = build_bench(cfg.bench, resumed_simulation(cfg.config.simulation, scan.seed, rp.points_done),
+                        realtime=not args.fast, config_path=cfg.path)
+    print(describe_plan(cfg, cfg, job.plan, str(rp.path)), file=sys.stderr)
+    sweep, position = rp.next_point
+    print(f"resuming: {rp.points_done} of {rp.points_total} points are in the file (it was {rp.state}"
+          + (f": {rp.reason}" if rp.reason else "") + f"); continuing at sweep {sweep + 1} point {position + 1} "
+          "after measuring the dark again", file=sys.stderr)
+    return _serve_job(args, bench, cfg, cfg.stream, keys, job, verb="continuing")
+
+
+def _add_file_resume(sub: Any) -> None:
+    """`shotpair resume` resumes a paused scan on a daemon (daemon/remote.py); `shotpair resume FILE`
+    continues an interrupted scan in its file, here. One verb for both, told apart by FILE."""
+    p = sub.choices["resume"]
+    remote = p.get_default("func")
+    p.description = ("Without FILE: resume the paused scan of a running daemon. With FILE: continue an interrupted "
+                     "scan (a crash, Ctrl-C, a full disk) in its own file on the bench it records; the points in "
+                     "the file are kept and the rest measured in the scan's order.")
+    p.add_argument("file", nargs="?", help="the HDF5 file of an interrupted scan to continue here")
+    g = p.add_argument_group("continuing a scan in FILE (--control and --keys then serve, as for `run`)")
+    g.add_argument("--bench", help="take the bench from this TOML file instead of the settings stored in FILE")
+    g.add_argument("--output", "-o", metavar="NEW", help="copy FILE to NEW and continue the copy (FILE is untouched)")
+    g.add_argument("--fast", action="store_true", help="simulated bench: run as fast as the computer allows")
+    g.add_argument("--data", metavar="ENDPOINT", help="publish live data here (default from the stored [stream])")
+
+    def dispatch(args: argparse.Namespace) -> int:
+        if args.file is None:
+            return int(remote(args))
+        if args.control == DEFAULT_CONTROL:  # the client default: serve on the stored [stream] endpoint instead
+            args.control = None
+        return cmd_resume(args)
+
+    p.set_defaults(func=dispatch)
+    for action in getattr(sub, "_choices_actions", []):
+        if action.dest == "resume":
+            action.help = "resume a paused scan on a daemon; with FILE, continue an interrupted scan in its file"
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     bench_cfg = load_config(args.config)
     if bench_cfg.config.bench is None:
         raise ConfigError("no [bench] section: the daemon needs a bench", file=bench_cfg.path, key_path="bench")
+    keys = _server_keys(args, bench_cfg, bench_cfg.stream)
     bench = build_bench(bench_cfg.bench, bench_cfg.config.simulation, realtime=not args.fast,
                         config_path=bench_cfg.path)
     bench.connect()
-    daemon = Daemon(bench, bench_cfg, bench_cfg.stream)
+    daemon = Daemon(bench, bench_cfg, bench_cfg.stream, keys)
     try:
         _bind(daemon, args, fallback=False)
+        if keys is not None:
+            print(keys.describe(), file=sys.stderr, flush=True)
         print(f"serving bench {bench.settings.name!r}: data {daemon.data_endpoint}, control {daemon.control_endpoint}",
               flush=True)
 
@@ -257,6 +385,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--fast", action="store_true", help="simulated bench: run as fast as the computer allows")
     p.add_argument("--data", metavar="ENDPOINT", help="publish live data here (default from [stream])")
     p.add_argument("--control", metavar="ENDPOINT", help="accept control here (default from [stream])")
+    p.add_argument("--keys", metavar="DIR", help="authenticate clients with the keys in DIR (`shotpair keys`; "
+                   "overrides [stream.auth])")
     p.set_defaults(func=cmd_run)
 
     p = sub.add_parser("serve", help="run the daemon: connect the bench, wait for commands, stream data")
@@ -264,10 +394,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--data", metavar="ENDPOINT", help="data stream endpoint (default from [stream])")
     p.add_argument("--control", metavar="ENDPOINT", help="control endpoint (default from [stream])")
     p.add_argument("--fast", action="store_true", help="simulated bench: run as fast as the computer allows")
+    p.add_argument("--keys", metavar="DIR", help="authenticate clients with the keys in DIR (`shotpair keys`; "
+                   "overrides [stream.auth])")
     p.set_defaults(func=cmd_serve)
 
     add_remote_commands(sub)
+    _add_file_resume(sub)
     add_monitor_command(sub)
+    add_keys_command(sub)
     add_simulate_command(sub)
 
     p = sub.add_parser("show", help="summarise a scan file: state, grid, ΔOD range, errors, rejected pairs")

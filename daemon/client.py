@@ -1,7 +1,8 @@
 """Python client of the shotpair daemon: control calls with timeouts, and a data-stream subscriber.
 
 Uses only the documented wire format (daemon/protocol.py, docs/protocol.md). Each object owns its socket
-and closes it with linger 0. Not thread-safe: use one client per thread.
+and closes it with linger 0. Not thread-safe: use one client per thread. With ``keys``
+(:func:`shotpair.daemon.auth.load_client_keys`) the sockets are CURVE clients of an authenticating daemon.
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ import zmq
 from shotpair.drivers.errors import DaemonError, DaemonUnavailable
 
 from . import protocol
+from .auth import ClientKeys, HandshakeWatch
 from .protocol import Message
 
 __all__ = ["ControlClient", "Subscriber", "DEFAULT_CONTROL", "DEFAULT_DATA"]
@@ -28,20 +30,27 @@ class ControlClient:
 
     Every call waits at most ``timeout_s`` and raises DaemonUnavailable when nothing answers, DaemonError
     (with the protocol's ``code``) when the daemon refuses. A late reply to an earlier, timed-out request
-    is recognised by its ``id`` and discarded.
+    is recognised by its ``id`` and discarded. A daemon refuses unknown keys without a word; the
+    DaemonUnavailable message then says what the handshake showed (key refused, keys missing, wrong
+    daemon key) from the socket's monitor events.
     """
 
     def __init__(self, endpoint: str = DEFAULT_CONTROL, timeout_s: float = 5.0,
-                 context: zmq.Context[Any] | None = None) -> None:
+                 context: zmq.Context[Any] | None = None, keys: ClientKeys | None = None) -> None:
         self.endpoint = endpoint
         self.timeout_s = timeout_s
+        self.keys = keys
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.DEALER)
         self._sock.setsockopt(zmq.LINGER, 0)
+        if keys is not None:
+            keys.apply(self._sock)
+        self._watch = HandshakeWatch(self._sock)
         self._sock.connect(endpoint)
         self._ids = itertools.count(1)
 
     def close(self) -> None:
+        self._watch.close()
         self._sock.close(linger=0)
 
     def __enter__(self) -> "ControlClient":
@@ -58,7 +67,11 @@ class ControlClient:
         while True:
             left_ms = int(max(0.0, deadline - time.monotonic()) * 1000)
             if not self._sock.poll(left_ms, zmq.POLLIN):
-                raise DaemonUnavailable(self.endpoint, self.timeout_s if timeout_s is None else timeout_s)
+                exc = DaemonUnavailable(self.endpoint, self.timeout_s if timeout_s is None else timeout_s)
+                hint = self._watch.explain(self.keys)
+                if hint:
+                    exc.args = (f"{exc.args[0]}; {hint}",)
+                raise exc
             reply = protocol.decode_reply(self._sock.recv_multipart())
             if reply.get("id") != request_id:
                 continue  # a late answer to an earlier request
@@ -116,11 +129,13 @@ class Subscriber:
 
     def __init__(self, endpoint: str = DEFAULT_DATA, topics: Sequence[str] | None = None,
                  context: zmq.Context[Any] | None = None, receive_hwm: int = 10_000,
-                 receive_buffer_bytes: int | None = None) -> None:
+                 receive_buffer_bytes: int | None = None, keys: ClientKeys | None = None) -> None:
         self.endpoint = endpoint
         self._ctx = context or zmq.Context.instance()
         self._sock = self._ctx.socket(zmq.SUB)
         self._sock.setsockopt(zmq.LINGER, 0)
+        if keys is not None:  # a daemon that does not know the keys sends nothing: receive() times out
+            keys.apply(self._sock)
         self._sock.setsockopt(zmq.RCVHWM, receive_hwm)
         if receive_buffer_bytes is not None:  # the kernel's TCP buffer; must be set before connecting
             self._sock.setsockopt(zmq.RCVBUF, receive_buffer_bytes)

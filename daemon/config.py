@@ -11,9 +11,10 @@ from __future__ import annotations
 import difflib
 import math
 import os
+import stat
 import tomllib
 from pathlib import Path
-from typing import Annotated, Any, Literal, Union
+from typing import Annotated, Any, Literal, NoReturn, Union
 
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
@@ -34,6 +35,7 @@ __all__ = [
     "ListSegment",
     "ScanSettings",
     "StreamSettings",
+    "StreamAuthSettings",
     "ShotpairConfig",
     "LoadedConfig",
     "load_config",
@@ -42,7 +44,7 @@ __all__ = [
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)  # NaN is no setting
 
 
 class DelayAxisSettings(_Strict):
@@ -116,9 +118,10 @@ class DetectorSettings(_Strict):
 
     @model_validator(mode="after")
     def _monotonic(self) -> "DetectorSettings":
-        w = self.wavelengths_nm()
-        d = np.diff(w)
-        if not (np.all(w > 0) and (np.all(d > 0) or np.all(d < 0))):
+        with np.errstate(all="ignore"):  # huge coefficients overflow: refused below, without a warning
+            w = self.wavelengths_nm()
+            d = np.diff(w)
+        if not (np.all(np.isfinite(w)) and np.all(w > 0) and (np.all(d > 0) or np.all(d < 0))):
             raise ValueError(f"wavelength_poly_nm gives wavelengths {w[0]:.6g}..{w[-1]:.6g} nm that are not positive "
                              "and strictly monotonic over the pixels")
         return self
@@ -161,6 +164,13 @@ class BenchSettings(_Strict):
     delay_generator: DelayGeneratorSettings | None = Field(None, description="An electronic delay axis; scans "
                                                            "choose it with scan.axis = \"generator\".")
     dark_shots: int = Field(1000, ge=2, le=10_000_000, description="Shots averaged for the dark at scan start.")
+    retry_attempts: int = Field(3, ge=0, le=1000, description="Instrument faults during a scan (no reply in "
+                                "time, an unusable reply, a lost connection) retried within any retry_window_s "
+                                "before the scan pauses; 0 pauses at the first.")
+    retry_window_s: float = Field(600.0, gt=0.0, le=1.0e6, description="Length of the sliding window that "
+                                  "retry_attempts counts retries in, s.")
+    retry_delay_s: float = Field(1.0, ge=0.0, le=600.0, description="Wait before each retry (a lost connection "
+                                 "is then opened again), s.")
 
     def instrument_sections(self) -> dict[str, Any]:
         """The instrument sections present in this bench, by kind (the delay generator only when configured)."""
@@ -235,7 +245,7 @@ class ScanSettings(_Strict):
     axis: Literal["stage", "generator"] = Field("stage", description="What sets the delay: the delay stage, or the "
                                                 "bench's delay generator (the stage then waits at time zero).")
     order: Literal["ascending", "descending", "alternating", "shuffled"] = Field("alternating")
-    seed: int | None = Field(None, description="Seed of the shuffled order (and of the simulator when it has none).")
+    seed: int | None = Field(None, ge=0, description="Seed of the shuffled order (and of the simulator when it has none).")
     output: str = Field("shotpair-scan.h5", description="Output HDF5 file; relative paths start at the working folder. An existing file is never overwritten: a number is added.")
     reject_threshold_mad: float = Field(6.0, gt=0.0, description="Shots further than this many robust standard deviations from the block median are rejected with their pair.")
 
@@ -245,6 +255,16 @@ class ScanSettings(_Strict):
         if not v.strip():
             raise ValueError("output must be a file path")
         return v
+
+
+class StreamAuthSettings(_Strict):
+    """CURVE authentication of the stream and control sockets (daemon/auth.py, docs/protocol.md 1.1)."""
+
+    enabled: bool | None = Field(None, description="true: only clients with listed keys connect; false: anyone "
+                                 "who reaches the ports (refused unless both endpoints are loopback); omitted: on "
+                                 "when keys_dir is given or an endpoint is reachable from other computers.")
+    keys_dir: str | None = Field(None, description="Folder written by `shotpair keys DIR` (the daemon's key pair, "
+                                 "clients/control/*.key, clients/read-only/*.key); relative to this file's folder.")
 
 
 class StreamSettings(_Strict):
@@ -260,6 +280,11 @@ class StreamSettings(_Strict):
     send_buffer_bytes: int | None = Field(None, ge=4096, le=64 * 2**20, description="Kernel send buffer per "
                                           "subscriber connection, bytes; omit to let the system size it (up to a "
                                           "few MB are then held for a stuck client before messages are dropped).")
+    max_request_bytes: int = Field(1 << 20, ge=1024, le=64 * 2**20, description="Longest control request read, "
+                                   "bytes (1 MiB); a longer one is answered bad_request unparsed, and a frame over "
+                                   "4 times this makes the daemon drop the connection without reading it.")
+    auth: StreamAuthSettings = Field(default_factory=StreamAuthSettings, description="Who may connect "
+                                     "([stream.auth]); required for endpoints other computers can reach.")
 
     @field_validator("data_endpoint", "control_endpoint")
     @classmethod
@@ -304,15 +329,20 @@ class LoadedConfig:
         return self.config.scan
 
 
-def _key_path(loc: tuple[Any, ...]) -> str:
+def _key_path(loc: tuple[Any, ...], *, tags: bool = True) -> str:
+    """``bench.detector.pixels`` / ``scan.delays[1].start_ps`` from a location; ``tags``: the location
+    comes from pydantic, whose union-member tag right after a list index is not a key the user wrote."""
     parts: list[str] = []
+    previous: Any = None
     for item in loc:
         if isinstance(item, int):
             parts.append(f"[{item}]")
-        elif item in ("linear", "log", "list") and parts and parts[-1].endswith("]"):
-            continue  # pydantic's tag of the union member: not a key the user wrote
+        elif tags and item in ("linear", "log", "list") and isinstance(previous, int):
+            pass
         else:
-            parts.append(("." if parts else "") + str(item))
+            key = str(item)
+            parts.append(("." if parts else "") + (key if len(key) <= 80 else key[:80] + "..."))
+        previous = item
     return "".join(parts)
 
 
@@ -357,20 +387,104 @@ def _describe(error: dict[str, Any], path: str) -> str:
         return ConfigError("required key is missing", file=path, key_path=key).render()
     msg = str(error.get("msg", "invalid value"))
     msg = msg.removeprefix("Value error, ")
-    return ConfigError(msg, file=path, key_path=key, value=error.get("input")).render()
+    return ConfigError(msg, file=path, key_path=key, value=_clipped(error.get("input"))).render()
+
+
+class _Shown(str):
+    """A value's repr, cut to a readable length, that a message shows as it is (no second repr)."""
+
+    def __repr__(self) -> str:
+        return str(self)
+
+
+#: Longest repr of a bad value quoted in a message, and most problems listed for one document.
+_MAX_SHOWN_CHARS = 200
+_MAX_PROBLEMS = 20
+
+
+def _clipped(value: Any) -> Any:
+    """The value, or its repr cut to :data:`_MAX_SHOWN_CHARS` when that is long (or cannot be made)."""
+    if value is None:
+        return None
+    try:
+        text = repr(value)
+    except (RecursionError, ValueError):  # nested too deeply, or an int beyond the digit limit of str()
+        return _Shown(f"<a {type(value).__name__} too large to show>")
+    return value if len(text) <= _MAX_SHOWN_CHARS else _Shown(text[:_MAX_SHOWN_CHARS] + "...")
+
+
+def _bad_leaves(data: Any) -> list[tuple[tuple[Any, ...], str, Any]]:
+    """Values no model may accept, in document order: NaN and infinity (TOML ``nan``/``inf``, a float
+    literal too large for a double such as ``1e400``, JSON ``NaN``) and text holding a lone surrogate
+    (JSON ``"\\ud800"``: not Unicode, cannot be written to a file or a file name).
+
+    Walks iteratively, so a document nested however deeply cannot exhaust the stack."""
+    found: list[tuple[tuple[Any, ...], str, Any]] = []
+    stack: list[tuple[tuple[Any, ...], Any]] = [((), data)]
+    while stack:
+        loc, value = stack.pop()
+        if isinstance(value, float) and not math.isfinite(value):
+            found.append((loc, "not a finite number (nan and inf are not allowed)", value))
+        elif isinstance(value, str):
+            try:
+                value.encode("utf-8")
+            except UnicodeEncodeError:
+                found.append((loc, "text that is not valid Unicode (a lone surrogate)", _clipped(value)))
+        elif isinstance(value, dict):
+            for key in reversed(list(value)):
+                try:
+                    str(key).encode("utf-8")
+                except UnicodeEncodeError:
+                    found.append(((*loc, _Shown(repr(key))), "a key that is not valid Unicode", None))
+                    continue
+                stack.append(((*loc, key), value[key]))
+        elif isinstance(value, (list, tuple)):
+            stack.extend(((*loc, i), value[i]) for i in reversed(range(len(value))))
+    return found
+
+
+def _nested(a: str, b: str) -> bool:
+    """Whether one key path is the other or lies inside it (``scan.delays`` and ``scan.delays[1].stop_ps``)."""
+    short, long = sorted((a, b), key=len)
+    return long == short or not short or long.startswith(short + ".") or long.startswith(short + "[")
+
+
+def _raise_problems(lines: list[str], path: str, first_key: str) -> NoReturn:
+    if len(lines) > _MAX_PROBLEMS:
+        lines = [*lines[:_MAX_PROBLEMS], f"... and {len(lines) - _MAX_PROBLEMS} more"]
+    raise ConfigProblems(lines, path, first_key)
 
 
 def parse_config(data: dict[str, Any], path: str = "<config>", text: str = "") -> LoadedConfig:
-    """Validate an already parsed TOML document. Raises ConfigError listing every problem found."""
+    """Validate an already parsed TOML document. Raises ConfigError listing every problem found.
+
+    Besides the models' own rules, NaN and infinity are refused anywhere in the document (no setting
+    means anything with them), and so is text that is not valid Unicode.
+    """
+    leaves = _bad_leaves(data)
+    lines = [ConfigError(why, file=path, key_path=_key_path(loc, tags=False), value=value).render()
+             for loc, why, value in leaves]
+    reported = {_key_path(loc, tags=False) for loc, _, _ in leaves}
     try:
         config = ShotpairConfig.model_validate(data)
     except ValidationError as exc:
-        lines = [_describe(e, path) for e in exc.errors()]
-        first = exc.errors()[0]
-        raise ConfigProblems(lines, path, _key_path(tuple(first.get("loc", ())))) from None
+        # A NaN also upsets the checks of the tables around it (time zero outside the travel...): say it once.
+        errors = [e for e in exc.errors() if not any(_nested(_key_path(tuple(e.get("loc", ()))), key)
+                                                     for key in reported)]
+        lines += [_describe(e, path) for e in errors]
+        first = leaves[0][0] if leaves else tuple(errors[0].get("loc", ())) if errors else ()
+        _raise_problems(lines, path, _key_path(first, tags=not leaves))
+    if lines:
+        _raise_problems(lines, path, _key_path(leaves[0][0], tags=False))
     loaded = LoadedConfig(config, path, text)
     if config.scan is not None:
         check_output(config.scan.output, path)
+    if config.stream is not None:  # the endpoints as written; serve/run check again with --data/--control
+        from .auth import auth_required
+
+        s = config.stream
+        auth_required(s.auth.enabled, s.auth.keys_dir, {"stream.data_endpoint": s.data_endpoint,
+                                                        "stream.control_endpoint": s.control_endpoint}, file=path)
     return loaded
 
 
@@ -397,32 +511,51 @@ def check_output(output: str, config_path: str, key_path: str = "scan.output") -
     except RuntimeError as exc:  # "~user" that does not exist
         raise ConfigError(f"cannot expand the path ({exc})", file=config_path, key_path=key_path,
                           value=output) from None
-    if target.exists() and target.is_dir():
-        raise ConfigError("output is a folder, not a file", file=config_path, key_path=key_path, value=output,
-                          allowed="a path to an .h5 file")
-    folder = target.parent if str(target.parent) else Path(".")
-    probe = folder
-    while not probe.exists():
-        if probe.parent == probe:
-            break
-        probe = probe.parent
-    if not probe.is_dir() or not os.access(probe, os.W_OK | os.X_OK):
+    try:
+        if target.exists() and target.is_dir():
+            raise ConfigError("output is a folder, not a file", file=config_path, key_path=key_path, value=output,
+                              allowed="a path to an .h5 file")
+        folder = target.parent if str(target.parent) else Path(".")
+        probe = folder
+        while not probe.exists():
+            if probe.parent == probe:
+                break
+            probe = probe.parent
+        usable = probe.is_dir() and os.access(probe, os.W_OK | os.X_OK)
+    except (OSError, ValueError) as exc:  # a name too long for the file system, a lone surrogate...
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise ConfigError(f"not a usable file name ({reason})", file=config_path, key_path=key_path,
+                          value=_clipped(output)) from None
+    if not usable:
         raise ConfigError(f"output folder {str(probe)!r} is not writable", file=config_path, key_path=key_path,
                           value=output, allowed="a path in a folder you may write to")
 
 
+#: Largest configuration file read, bytes.
+MAX_CONFIG_BYTES = 16 * 2**20
+
+
 def load_config(path: str | os.PathLike[str]) -> LoadedConfig:
     """Read and validate a TOML configuration file. Raises ConfigError for every user mistake."""
-    p = Path(path)
-    shown = str(path)
+    shown = str(path) if len(str(path)) <= 300 else str(path)[:300] + "..."
     try:
-        raw = p.read_bytes()
+        p = Path(path)
+        # Only a regular file, read with a bound: a path sent in a `start` request may name a device or a
+        # pipe (/dev/zero never ends, a FIFO blocks the daemon until someone writes to it).
+        if p.exists() and not p.is_dir() and not stat.S_ISREG(p.stat().st_mode):
+            raise ConfigError("not a regular file", file=shown, allowed="a TOML file")
+        with p.open("rb") as f:
+            raw = f.read(MAX_CONFIG_BYTES + 1)
     except FileNotFoundError:
         raise ConfigError("file not found", file=shown, allowed="an existing TOML file") from None
     except IsADirectoryError:
         raise ConfigError("is a folder, not a file", file=shown) from None
     except OSError as exc:
         raise ConfigError(f"cannot read the file ({exc.strerror})", file=shown) from None
+    except ValueError as exc:  # a NUL character in the name
+        raise ConfigError(f"not a usable file name ({exc})", file=shown) from None
+    if len(raw) > MAX_CONFIG_BYTES:
+        raise ConfigError(f"larger than {MAX_CONFIG_BYTES // 2**20} MiB: not a configuration file", file=shown)
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -431,4 +564,6 @@ def load_config(path: str | os.PathLike[str]) -> LoadedConfig:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"not valid TOML: {exc}", file=shown) from None
+    except RecursionError:  # tomllib recurses once per nested array or inline table
+        raise ConfigError("not valid TOML here: arrays or inline tables nested too deeply", file=shown) from None
     return parse_config(data, shown, text)

@@ -233,6 +233,7 @@ class PointAccumulator:
         four_state = probe_on is not None and not bool(np.all(probe_on))
         pairs = pair_shots(block.pump_on, block.frame_id, probe_on if four_state else None)
         tot["gaps"] += pairs.gaps
+        tot["phase_breaks"] += pairs.phase_breaks
         tot["unpaired_shots"] += pairs.unpaired
         on_idx, off_idx = pairs.on_index, pairs.off_index
 

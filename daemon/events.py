@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 __all__ = ["Event", "ScanStarted", "PointSaved", "ScanEnded", "LogEvent", "StateChanged", "BlockProgress", "SweepDone",
-           "MoveDone"]
+           "MoveDone", "InstrumentFault"]
 
 
 @dataclass(frozen=True)
@@ -46,6 +46,10 @@ class PointSaved(Event):
     elapsed_s: float
     eta_s: float
     shots_per_s: float
+    #: Instrument faults retried while this point was measured (its move included), and how many times
+    #: its measurement was discarded and begun again (a pause, an untrusted block, the chopper's lock lost).
+    retries: int = 0
+    restarts: int = 0
 
 
 @dataclass(frozen=True)
@@ -93,3 +97,20 @@ class MoveDone(Event):
     delay_ps: float
     position_mm: float
     error: str = ""
+
+
+@dataclass(frozen=True)
+class InstrumentFault(Event):
+    """An instrument fault during a scan and what the runner did about it.
+
+    ``action`` is ``retry`` (within the budget: the operation is done again), ``paused`` (past the budget:
+    the scan is paused, shutter closed), ``still_failing`` (a resume tried the instrument again and it
+    failed: still paused) or ``cleared`` (a resume found it answering: the scan goes on). ``retries``
+    counts the retries of the scan so far; ``time_s`` is Unix time (s) of the fault.
+    """
+
+    instrument: str
+    error: str
+    action: str
+    retries: int
+    time_s: float

@@ -26,6 +26,7 @@ import numpy as np
 
 from shotpair.drivers.errors import DaemonError, DaemonUnavailable, ProtocolError, ShotpairError, StorageError
 
+from .auth import ClientKeys, add_client_key_options, client_keys_from_args
 from .client import DEFAULT_CONTROL, ControlClient, Subscriber
 from .figures import ScanData, load_pyplot, parse_numbers, scan_figure
 from .monitor_state import MonitorState, Progress
@@ -189,7 +190,7 @@ def follow(state: MonitorState, control_endpoint: str, data_endpoint: str | None
            on_message: Callable[[MonitorState, Message | None, float | None], None] | None = None,
            on_tick: Callable[[MonitorState, float], bool] | None = None,
            stop: threading.Event | None = None, ready: threading.Event | None = None,
-           clock: Callable[[], float] = time.monotonic) -> FollowResult:
+           clock: Callable[[], float] = time.monotonic, keys: ClientKeys | None = None) -> FollowResult:
     """Fill ``state`` from a daemon until the scan ends (``until_finished``), ``deadline_s`` (a ``clock``
     time) passes, ``stop`` is set, or ``on_tick`` returns True.
 
@@ -198,18 +199,18 @@ def follow(state: MonitorState, control_endpoint: str, data_endpoint: str | None
     messages could pass unseen (PUB/SUB's slow join). ``ready`` is set then. When the stream is silent for
     ``timeout_s`` (at most CONTROL_TIMEOUT_CAP_S) the daemon is asked for ``status``; if that goes unanswered, DaemonUnavailable is raised
     when ``until_finished``, else ``on_message`` is told how long the daemon has been silent and the
-    monitor keeps waiting for it.
+    monitor keeps waiting for it. ``keys``: CURVE keys for an authenticating daemon (both sockets).
     """
     import zmq
 
     control_timeout_s = min(timeout_s, CONTROL_TIMEOUT_CAP_S)
     ctx = zmq.Context()
     try:
-        with ControlClient(control_endpoint, timeout_s=timeout_s, context=ctx) as control:
+        with ControlClient(control_endpoint, timeout_s=timeout_s, context=ctx, keys=keys) as control:
             state.apply_status(control.status())
             control.timeout_s = control_timeout_s
             endpoint = data_endpoint or data_endpoint_for(state.status.get("data_endpoint"), control_endpoint)
-            with Subscriber(endpoint, context=ctx) as sub:
+            with Subscriber(endpoint, context=ctx, keys=keys) as sub:
                 state.apply_snapshot(control.snapshot())
                 if on_message:
                     on_message(state, None, None)
@@ -282,7 +283,7 @@ def run_monitor(*, control: str = DEFAULT_CONTROL, data: str | None = None, once
                 save_png: str | None = None, timeout_s: float = 5.0, out: TextIO | None = None,
                 err: TextIO | None = None, stop: threading.Event | None = None,
                 ready: threading.Event | None = None, delays_ps: Sequence[float] | None = None,
-                wavelengths_nm: Sequence[float] | None = None) -> int:
+                wavelengths_nm: Sequence[float] | None = None, keys: ClientKeys | None = None) -> int:
     """The whole `shotpair monitor` command; returns the exit code (0 also after Ctrl-C)."""
     out = out or sys.stdout
     err = err or sys.stderr
@@ -291,13 +292,13 @@ def run_monitor(*, control: str = DEFAULT_CONTROL, data: str | None = None, once
         return EXIT_USAGE
     try:
         if once:
-            with ControlClient(control, timeout_s=timeout_s) as client:
+            with ControlClient(control, timeout_s=timeout_s, keys=keys) as client:
                 print(describe_status(client.status()), file=out)
             return EXIT_OK
         state = MonitorState(tuple(delays_ps) if delays_ps else None,
                              tuple(wavelengths_nm) if wavelengths_nm else None)
         if save_png:
-            return _save_png_mode(state, control, data, save_png, timeout_s, out, stop, ready)
+            return _save_png_mode(state, control, data, save_png, timeout_s, out, stop, ready, keys)
         view = TerminalView(out, where=control)
         window = LiveWindow() if plot else None
 
@@ -311,7 +312,7 @@ def run_monitor(*, control: str = DEFAULT_CONTROL, data: str | None = None, once
         try:
             follow(state, control, data, timeout_s=timeout_s,
                    on_message=lambda st, msg, silent: view.show(st, msg, silent_s=silent),
-                   on_tick=on_tick, stop=stop, ready=ready)
+                   on_tick=on_tick, stop=stop, ready=ready, keys=keys)
         finally:
             view.finish()
         return EXIT_OK
@@ -324,12 +325,13 @@ def run_monitor(*, control: str = DEFAULT_CONTROL, data: str | None = None, once
 
 
 def _save_png_mode(state: MonitorState, control: str, data: str | None, path: str, timeout_s: float, out: TextIO,
-                   stop: threading.Event | None, ready: threading.Event | None) -> int:
+                   stop: threading.Event | None, ready: threading.Event | None,
+                   keys: ClientKeys | None = None) -> int:
     deadline = time.monotonic() + timeout_s
     failure: DaemonError | None = None
     try:
         result = follow(state, control, data, timeout_s=timeout_s, until_finished=True, deadline_s=deadline,
-                        stop=stop, ready=ready)
+                        stop=stop, ready=ready, keys=keys)
         reason = result.reason
     except DaemonUnavailable as exc:
         if not state.has_map:
@@ -350,10 +352,15 @@ def _save_png_mode(state: MonitorState, control: str, data: str | None, path: st
 
 
 def _cmd_monitor(args: argparse.Namespace) -> int:
+    try:
+        keys = client_keys_from_args(args)
+    except ShotpairError as exc:  # missing or unreadable key files: a usage mistake
+        print(f"shotpair: error: {exc}", file=sys.stderr)
+        return EXIT_USAGE
     return run_monitor(control=args.control, data=args.data, once=args.once, plot=args.plot,
                        save_png=args.save_png, timeout_s=args.timeout,
                        delays_ps=parse_numbers(args.delays, "--delays"),
-                       wavelengths_nm=parse_numbers(args.wavelengths, "--wavelengths"))
+                       wavelengths_nm=parse_numbers(args.wavelengths, "--wavelengths"), keys=keys)
 
 
 def add_monitor_command(sub: Any) -> argparse.ArgumentParser:
@@ -375,6 +382,7 @@ def add_monitor_command(sub: Any) -> argparse.ArgumentParser:
                         "wait for the scan to end before the figure is written with what has arrived")
     p.add_argument("--delays", metavar="PS,PS,...", help="delays (ps) for the spectra panel of the figure")
     p.add_argument("--wavelengths", metavar="NM,NM,...", help="wavelengths (nm) for the kinetics panel")
+    add_client_key_options(p)  # a read-only client is enough: the monitor asks only status and snapshot
     p.set_defaults(func=_cmd_monitor)
     return p
 

@@ -22,34 +22,44 @@ class ShotPairs(NamedTuple):
     off_index: np.ndarray
     unpaired: int
     gaps: int
+    #: Places where two consecutive frames carry the same pump flag (two pumped or two unpumped shots in
+    #: a row: the chopper lost its phase); like gaps, no pair is formed across one.
+    phase_breaks: int = 0
 
 
 def pair_shots(pump_on: np.ndarray, frame_id: np.ndarray, probe_on: np.ndarray | None = None) -> ShotPairs:
     """Pair each pump-on shot with an adjacent pump-off shot of the same unbroken frame run.
 
     The candidates are the block's shots in order (only the probe-on shots when ``probe_on`` is given).
-    Two consecutive candidates form a pair when their pump flags differ and no frame-counter gap lies
-    between them (every step of ``frame_id`` from one to the other is exactly 1). Pairs do not overlap:
-    walking left to right, a candidate already used is skipped, which in each stretch of pairable
-    neighbours keeps the 1st, 3rd, 5th... link. A candidate left without a partner is unpaired. Works on
-    irregular flags (two pump-on shots in a row, phase slips): pairing follows the flags, not positions.
+    Two consecutive candidates form a pair when their pump flags differ and neither a frame-counter gap
+    (a step of ``frame_id`` other than 1) nor a phase break lies between them. A phase break is a step
+    between two consecutive frames whose pump flags are equal (over all shots, probe-off ones included):
+    the chopper's phase was lost there, so pump-on and pump-off are no longer known to alternate. Pairs
+    do not overlap: walking left to right, a candidate already used is skipped, which in each stretch of
+    pairable neighbours keeps the 1st, 3rd, 5th... link. A candidate left without a partner is unpaired.
 
     Returns
     -------
     ShotPairs
-        ``on_index``/``off_index`` (int64), ``unpaired`` candidates, ``gaps`` (frame steps other than 1).
+        ``on_index``/``off_index`` (int64), ``unpaired`` candidates, ``gaps`` (frame steps other than 1),
+        ``phase_breaks`` (steps of exactly one frame between equal pump flags).
     """
     pump_on = np.asarray(pump_on, dtype=bool)
     frame_id = np.asarray(frame_id, dtype=np.int64)
     n = pump_on.shape[0]
     breaks = np.diff(frame_id) != 1
     gaps = int(np.count_nonzero(breaks))
+    phase = pump_on[1:] == pump_on[:-1]
+    phase &= ~breaks
+    phase_breaks = int(np.count_nonzero(phase))
+    if phase_breaks:
+        breaks |= phase
     run = np.zeros(n, dtype=np.int64)
     np.cumsum(breaks, out=run[1:])
     cand = np.arange(n, dtype=np.int64) if probe_on is None else np.flatnonzero(np.asarray(probe_on, dtype=bool))
     if cand.size < 2:
         empty = np.zeros(0, dtype=np.int64)
-        return ShotPairs(empty, empty, int(cand.size), gaps)
+        return ShotPairs(empty, empty, int(cand.size), gaps, phase_breaks)
     flags = pump_on[cand]
     link = (flags[1:] != flags[:-1]) & (run[cand[1:]] == run[cand[:-1]])
     pos = np.arange(link.size)
@@ -61,7 +71,7 @@ def pair_shots(pump_on: np.ndarray, frame_id: np.ndarray, probe_on: np.ndarray |
     first_on = flags[take]
     on_index = np.where(first_on, first, second)
     off_index = np.where(first_on, second, first)
-    return ShotPairs(on_index, off_index, int(cand.size - 2 * take.size), gaps)
+    return ShotPairs(on_index, off_index, int(cand.size - 2 * take.size), gaps, phase_breaks)
 
 
 def robust_center_scale(values: np.ndarray) -> tuple[float, float]:

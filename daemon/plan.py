@@ -7,24 +7,56 @@ that names the segment, so a bad scan is refused before anything moves.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
 from shotpair.drivers.errors import ConfigError
 
-from .config import BenchSettings, ListSegment, ScanSettings
+from .config import BenchSettings, LinearSegment, ListSegment, LogSegment, ScanSettings
 
-__all__ = ["ScanPlan", "build_grid_ps", "sweep_orders", "make_plan"]
+__all__ = ["ScanPlan", "build_grid_ps", "sweep_orders", "make_plan", "MAX_SEGMENT_DELAYS", "MAX_SWEEP_VALUES"]
 
 #: Delays closer than this are the same point (ps); far below any stage's resolution (1e-6 ps = 0.15 nm).
 _SAME_DELAY_PS = 1e-6
+#: Most delays all segments together may list before merging (80 MB of float64 while planning).
+MAX_SEGMENT_DELAYS = 10_000_000
+#: Most values of one sweep-resolved array (sweeps x delay points x pixels): the file and the daemon hold
+#: several such float64 arrays, 1 GiB each at this limit. A scan beyond it is refused before anything runs.
+MAX_SWEEP_VALUES = 1 << 27
 
 
 def _segment_delays(segment: object) -> np.ndarray:
     if isinstance(segment, ListSegment):
         return segment.delays_ps_array()
     return segment.delays_ps()  # type: ignore[attr-defined]
+
+
+def _segment_size(segment: object) -> int:
+    """How many delays a segment lists, without building them."""
+    if isinstance(segment, ListSegment):
+        return len(segment.delays_ps)
+    if isinstance(segment, LogSegment):
+        return segment.points
+    assert isinstance(segment, LinearSegment)
+    return int(math.floor((segment.stop_ps - segment.start_ps) / segment.step_ps + 1e-9)) + 1
+
+
+def _check_size(scan: ScanSettings, bench: BenchSettings, config_path: str, n_points: int | None = None) -> None:
+    """Refuse a scan too large to plan, store or hold in memory (before its arrays are built)."""
+    if n_points is None:
+        listed = sum(_segment_size(s) for s in scan.delays)
+        if listed > MAX_SEGMENT_DELAYS:
+            raise ConfigError(f"the delay segments list {listed:,} delays", file=config_path, key_path="scan.delays",
+                              allowed=f"at most {MAX_SEGMENT_DELAYS:,} in all")
+        return
+    pixels = bench.detector.pixels
+    values = n_points * scan.sweeps * pixels
+    if values > MAX_SWEEP_VALUES:
+        raise ConfigError(f"{scan.sweeps:,} sweeps x {n_points:,} delay points x {pixels:,} pixels make {values:,} "
+                          "values per sweep-resolved array", file=config_path, key_path="scan.sweeps",
+                          allowed=f"at most {MAX_SWEEP_VALUES:,} (fewer sweeps, delay points or pixels)")
 
 
 def build_grid_ps(segments: list[object]) -> np.ndarray:
@@ -113,6 +145,7 @@ def _generator_plan(scan: ScanSettings, bench: BenchSettings, config_path: str) 
         raise ConfigError("the scan asks for the delay generator but the bench has none", file=config_path,
                           key_path="scan.axis", value=scan.axis, allowed="stage, or add a [bench.delay_generator]")
     low_ps, high_ps = gen.delay_range_ps()
+    _check_size(scan, bench, config_path)
     for i, segment in enumerate(scan.delays):
         d = _segment_delays(segment)
         bad = d[(d < low_ps - _SAME_DELAY_PS) | (d > high_ps + _SAME_DELAY_PS)]
@@ -123,6 +156,7 @@ def _generator_plan(scan: ScanSettings, bench: BenchSettings, config_path: str) 
                 allowed=(f"{low_ps:.6g} to {high_ps:.6g} ps with range_ps = {list(gen.range_ps)}, "
                          f"time_zero_ps = {gen.time_zero_ps}"))
     grid = build_grid_ps(list(scan.delays))
+    _check_size(scan, bench, config_path, grid.size)
     settings = np.clip(grid + gen.time_zero_ps, *gen.range_ps)
     positions = np.full(grid.size, bench.delay_axis.time_zero_mm)
     orders = sweep_orders(grid.size, scan.sweeps, scan.order, scan.seed)
@@ -142,6 +176,7 @@ def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<con
         return _generator_plan(scan, bench, config_path)
     line = bench.delay_axis.delay_line()
     low_ps, high_ps = line.delay_range_ps(bench.delay_axis.travel_mm)
+    _check_size(scan, bench, config_path)
     for i, segment in enumerate(scan.delays):
         d = _segment_delays(segment)
         bad = d[(d < low_ps - _SAME_DELAY_PS) | (d > high_ps + _SAME_DELAY_PS)]
@@ -154,6 +189,7 @@ def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<con
                          f"passes = {line.passes}, time_zero_mm = {line.time_zero_mm}"),
             )
     grid = build_grid_ps(list(scan.delays))
+    _check_size(scan, bench, config_path, grid.size)
     positions = np.asarray(line.position_mm(grid), dtype=np.float64)
     lo, hi = bench.delay_axis.travel_mm
     positions = np.clip(positions, lo, hi)  # only rounding at the very ends can step outside

@@ -39,9 +39,10 @@ class PointResult:
         Pair-pixels masked for saturation (raw ≥ saturation on either shot, or on the reference), and for
         a dark-corrected value ≤ 0 (either shot or reference), int64; each masked entry counted once,
         saturation first.
-    shots, pairs, rejected_pairs, unpaired_shots, gaps, blocks, background_missing_blocks:
+    shots, pairs, rejected_pairs, unpaired_shots, gaps, blocks, background_missing_blocks, phase_breaks:
         Scalars: shots seen, pairs accepted, pairs rejected as outliers, candidate shots left unpaired,
-        frame-counter gaps inside blocks, blocks added, four-state blocks lacking a probe-off state.
+        frame-counter gaps inside blocks, blocks added, four-state blocks lacking a probe-off state, and
+        phase breaks (two consecutive frames with the same pump flag; never paired across).
     """
 
     count: np.ndarray
@@ -59,9 +60,10 @@ class PointResult:
     gaps: int = 0
     blocks: int = 0
     background_missing_blocks: int = 0
+    phase_breaks: int = 0
 
     _SCALARS = ("shots", "pairs", "rejected_pairs", "unpaired_shots", "gaps", "blocks",
-                "background_missing_blocks")
+                "background_missing_blocks", "phase_breaks")
     _SUMS = ("sigma2_sum", "counts_on_sum", "counts_off_sum", "saturated", "nonpositive")
 
     @classmethod

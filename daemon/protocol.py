@@ -31,6 +31,8 @@ __all__ = [
     "decode_data",
     "encode_request",
     "decode_request",
+    "nesting_depth",
+    "loads_json",
     "encode_reply",
     "encode_error",
     "decode_reply",
@@ -40,9 +42,12 @@ __all__ = [
 PROTOCOL_VERSION = 1
 TOPICS = ("status", "block", "point", "sweep", "scan", "log")
 ERROR_CODES = ("bad_request", "unknown_command", "bad_argument", "illegal_state", "config_error",
-               "instrument_error", "storage_error", "internal_error")
+               "instrument_error", "storage_error", "internal_error", "forbidden")
 _ALLOWED_KINDS = "biuf"  # bool, signed, unsigned, float: no objects, no strings on the wire
 MAX_HEADER_BYTES = 1 << 20
+#: Deepest nesting of arrays and objects a request may have (RFC 8259 section 9 lets a parser limit it):
+#: a scan table needs 4; far deeper ones could not even be echoed back without exhausting the stack.
+MAX_REQUEST_DEPTH = 32
 
 
 @dataclass(frozen=True)
@@ -101,30 +106,59 @@ def decode_arrays(specs: Any, frames: Sequence[bytes | memoryview]) -> dict[str,
                             f"{len(frames)} frames follow")
     out: dict[str, np.ndarray] = {}
     for spec, frame in zip(specs, frames):
+        # Exactly the types docs/protocol.md section 2.2 gives: a string name, a type string, a list of
+        # integers (no 1.5 read as 1, no "12" read as [1, 2], no true read as 1).
+        if not (isinstance(spec, dict) and isinstance(spec.get("name"), str) and isinstance(spec.get("dtype"), str)
+                and isinstance(spec.get("shape"), list)
+                and all(isinstance(s, int) and not isinstance(s, bool) for s in spec["shape"])):
+            raise ProtocolError(f"bad array description {_clip(spec)}: needs a string 'name', a type string "
+                                "'dtype' and a list of integers 'shape'")
+        name, shape = spec["name"], tuple(spec["shape"])
         try:
-            name, dtype, shape = spec["name"], np.dtype(spec["dtype"]), tuple(int(s) for s in spec["shape"])
-        except (KeyError, TypeError, ValueError, OverflowError) as exc:
-            raise ProtocolError(f"bad array description {spec!r}: {exc}") from None
+            dtype = np.dtype(spec["dtype"])
+        except (TypeError, ValueError, OverflowError, RecursionError) as exc:
+            raise ProtocolError(f"array {_clip(name)}: bad dtype {_clip(spec['dtype'])} ({_clip(exc, 80)})") from None
         if dtype.kind not in _ALLOWED_KINDS or any(s < 0 for s in shape):
-            raise ProtocolError(f"array {name!r}: dtype {dtype} or shape {shape} not allowed")
+            raise ProtocolError(f"array {_clip(name)}: dtype {_clip(dtype.str)} or shape {_clip(shape)} not allowed")
         buf = memoryview(frame).cast("B")
         expected = math.prod(shape) * dtype.itemsize
         if buf.nbytes != expected:
-            raise ProtocolError(f"array {name!r}: {buf.nbytes} bytes for shape {shape} {dtype.str} ({expected})")
+            raise ProtocolError(f"array {_clip(name)}: {buf.nbytes} bytes for shape {_clip(shape)} {dtype.str} "
+                                f"({_clip(expected)})")
         try:
-            out[str(name)] = np.frombuffer(buf, dtype=dtype).reshape(shape)
+            out[name] = np.frombuffer(buf, dtype=dtype).reshape(shape)
         except ValueError as exc:  # e.g. more dimensions than numpy holds, or a zero-size shape of huge sides
-            raise ProtocolError(f"array {name!r}: shape {shape} cannot be held: {exc}") from None
+            raise ProtocolError(f"array {_clip(name)}: shape {_clip(shape)} cannot be held: {exc}") from None
     return out
 
 
-def _header(raw: bytes | memoryview) -> dict[str, Any]:
-    data = bytes(raw)
-    if len(data) > MAX_HEADER_BYTES:
-        raise ProtocolError(f"header of {len(data)} bytes is larger than {MAX_HEADER_BYTES}")
+def _clip(value: Any, limit: int = 120) -> str:
+    """A repr for an error message, cut short: a bad header may hold a megabyte in one field."""
     try:
-        obj = json.loads(data.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError) as exc:
+        text = repr(value)
+    except (ValueError, RecursionError):  # an int beyond str()'s digit limit, or nested too deeply
+        return f"<a {type(value).__name__} too large to show>"
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
+def _no_constant(name: str) -> Any:
+    raise ValueError(f"{name} is not JSON (RFC 8259 section 6: numbers are finite)")
+
+
+def loads_json(data: bytes) -> Any:
+    """Parse JSON as RFC 8259 defines it: UTF-8 text (no other encoding guessed), no NaN or Infinity literals.
+
+    Raises ValueError (UnicodeDecodeError, json.JSONDecodeError) or RecursionError.
+    """
+    return json.loads(data.decode("utf-8"), parse_constant=_no_constant)
+
+
+def _header(raw: bytes | memoryview, max_bytes: int = MAX_HEADER_BYTES) -> dict[str, Any]:
+    if memoryview(raw).nbytes > max_bytes:  # measured before anything is copied or parsed
+        raise ProtocolError(f"header of {memoryview(raw).nbytes} bytes is larger than the limit of {max_bytes} bytes")
+    try:
+        obj = loads_json(bytes(raw))
+    except (ValueError, RecursionError) as exc:  # UnicodeDecodeError and JSONDecodeError are ValueErrors
         raise ProtocolError(f"header is not UTF-8 JSON: {exc}") from None
     if not isinstance(obj, dict):
         raise ProtocolError("header is not a JSON object")
@@ -167,11 +201,33 @@ def encode_request(cmd: str, request_id: Any = None, **args: Any) -> list[bytes]
     return [_dumps(body)]
 
 
-def decode_request(frames: Sequence[bytes | memoryview]) -> dict[str, Any]:
-    """A control request. Raises ProtocolError (code bad_request) if it is not one JSON object with ``cmd``."""
+def nesting_depth(obj: Any, limit: int) -> int:
+    """How deeply arrays and objects nest in a decoded JSON value (a scalar is 0), counted up to ``limit + 1``
+    at most, level by level (no recursion, whatever the value; a few ms for a list of 200 000 numbers)."""
+    depth = 0
+    level = [obj] if isinstance(obj, (dict, list)) else []
+    while level:
+        depth += 1
+        if depth > limit:
+            return depth
+        below: list[Any] = []
+        for node in level:
+            children = node.values() if isinstance(node, dict) else node
+            kinds = set(map(type, children))  # in C: a long list of numbers costs no Python-level loop
+            if list in kinds or dict in kinds:
+                below.extend([c for c in children if type(c) is list or type(c) is dict])
+        level = below
+    return depth
+
+
+def decode_request(frames: Sequence[bytes | memoryview], max_bytes: int = MAX_HEADER_BYTES) -> dict[str, Any]:
+    """A control request. Raises ProtocolError (code bad_request) if it is not one JSON object with ``cmd``,
+    if it is longer than ``max_bytes`` (checked before parsing) or nests deeper than :data:`MAX_REQUEST_DEPTH`."""
     if len(frames) != 1:
         raise ProtocolError(f"a request is one frame, got {len(frames)}")
-    body = _header(frames[0])
+    body = _header(frames[0], max_bytes)
+    if nesting_depth(body, MAX_REQUEST_DEPTH) > MAX_REQUEST_DEPTH:
+        raise ProtocolError(f"request nests arrays and objects deeper than {MAX_REQUEST_DEPTH} levels")
     if not isinstance(body.get("cmd"), str):
         raise ProtocolError("request has no string 'cmd'")
     return body

@@ -13,6 +13,7 @@ from typing import Any
 
 from shotpair.drivers.errors import ConfigError
 
+from .auth import add_client_key_options, client_keys_from_args
 from .client import DEFAULT_CONTROL, ControlClient
 from .progress import format_duration
 
@@ -46,7 +47,8 @@ def describe_status(st: dict[str, Any]) -> str:
 
 
 def _client(args: argparse.Namespace) -> ControlClient:
-    return ControlClient(args.control, timeout_s=args.timeout)
+    """The control client the options describe; ConfigError (exit 2) for missing or unreadable keys."""
+    return ControlClient(args.control, timeout_s=args.timeout, keys=client_keys_from_args(args))
 
 
 def _print(args: argparse.Namespace, reply: dict[str, Any], human: str) -> int:
@@ -102,6 +104,7 @@ def add_remote_commands(sub: Any) -> None:
                        help=f"the daemon's control endpoint (default {DEFAULT_CONTROL})")
         p.add_argument("--timeout", type=float, default=5.0, metavar="S", help="seconds to wait for an answer")
         p.add_argument("--json", action="store_true", help="print the raw reply as JSON")
+        add_client_key_options(p)
 
     p = sub.add_parser("status", help="ask a running daemon where it is")
     common(p)

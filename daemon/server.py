@@ -9,6 +9,7 @@ stay fast while a scan runs. Instruments are touched only by the runner's worker
 from __future__ import annotations
 
 import logging
+import math
 import queue
 import time
 from typing import Any, Callable
@@ -20,16 +21,21 @@ from shotpair.drivers.errors import (ConfigError, InstrumentError, LimitError, P
                                      StateError, StorageError)
 
 from . import protocol
+from .auth import DaemonAuthenticator, ServerKeys, check_command, rights_of, server_keys_for
 from .bench import Bench
 from .config import LoadedConfig, StreamSettings, check_output, load_config, parse_config
-from .events import (BlockProgress, Event, LogEvent, MoveDone, PointSaved, ScanEnded, ScanStarted, StateChanged,
-                     SweepDone)
+from .events import (BlockProgress, Event, InstrumentFault, LogEvent, MoveDone, PointSaved, ScanEnded, ScanStarted,
+                     StateChanged, SweepDone)
 from .plan import make_plan
 from .runner import Runner, ScanJob, new_scan_id
 from .states import TRANSITIONS, RunState
 from .store import software_version, unique_path
 
-__all__ = ["Daemon"]
+__all__ = ["Daemon", "TRANSPORT_LIMIT_FACTOR"]
+
+#: The control socket's ZMQ_MAXMSGSIZE is this many times ``[stream] max_request_bytes``: a request up to
+#: that size still gets a ``bad_request`` reply; a longer frame makes libzmq drop the connection unread.
+TRANSPORT_LIMIT_FACTOR = 4
 
 log = logging.getLogger(__name__)
 
@@ -57,12 +63,20 @@ class Daemon:
     stream:
         Endpoints and intervals; endpoints may use ``tcp://127.0.0.1:*`` for a free port
         (see :attr:`data_endpoint` / :attr:`control_endpoint` after :meth:`bind`).
+    keys:
+        CURVE keys (daemon/auth.py): both sockets then admit only the listed clients, and a read-only
+        client's commands other than status/snapshot are answered ``forbidden``. When None, :meth:`bind`
+        takes them from ``stream.auth`` and refuses endpoints other computers could reach without them.
     """
 
-    def __init__(self, bench: Bench, bench_config: LoadedConfig, stream: StreamSettings) -> None:
+    def __init__(self, bench: Bench, bench_config: LoadedConfig, stream: StreamSettings,
+                 keys: ServerKeys | None = None) -> None:
         self.bench = bench
         self.bench_config = bench_config
         self.stream = stream
+        self.keys = keys
+        self._auth: DaemonAuthenticator | None = None
+        self._peer: tuple[str | None, str | None] = (None, None)  # rights, name of the request being answered
         self.runner = Runner(bench, block_interval_s=stream.block_interval_s)
         self.listeners: list[Callable[[Event], None]] = []
         self.exit_when_idle = False
@@ -77,15 +91,26 @@ class Daemon:
                                         "point": None, "points": None, "points_done": 0, "points_total": 0,
                                         "delay_ps": None, "shots_per_s": None, "rejected_fraction": None,
                                         "excess_noise_median": None, "eta_s": None, "last_error": None,
-                                        "last_scan_state": None, "last_scan_id": None}
+                                        "last_scan_state": None, "last_scan_id": None, "fault": None, "retries": 0}
         self._map: dict[str, np.ndarray] | None = None
         self._job_delays = np.zeros(0)
         self._last_status_s = 0.0
 
     # ------------------------------------------------------------------ sockets
     def bind(self, data_endpoint: str | None = None, control_endpoint: str | None = None) -> None:
-        """Create and bind both sockets (linger 0). Raises ConfigError naming the endpoint that failed."""
+        """Create and bind both sockets (linger 0). Raises ConfigError naming the endpoint that failed, or,
+        before creating anything, when an endpoint other computers can reach would go without keys."""
+        data_endpoint = data_endpoint or self.stream.data_endpoint
+        control_endpoint = control_endpoint or self.stream.control_endpoint
+        if self.keys is None:
+            self.keys = server_keys_for(self.stream.auth.enabled, self.stream.auth.keys_dir,
+                                        {"stream.data_endpoint": data_endpoint,
+                                         "stream.control_endpoint": control_endpoint},
+                                        config_path=self.bench_config.path)
         self._ctx = zmq.Context()
+        if self.keys is not None:  # the ZAP handler runs before any socket can take a connection
+            self._auth = DaemonAuthenticator(self._ctx, self.keys)
+            self._auth.start()
         self._pub = self._ctx.socket(zmq.PUB)
         self._pub.setsockopt(zmq.LINGER, 0)
         self._pub.setsockopt(zmq.SNDHWM, self.stream.send_high_water_mark)
@@ -94,9 +119,13 @@ class Daemon:
         self._router = self._ctx.socket(zmq.ROUTER)
         self._router.setsockopt(zmq.LINGER, 0)
         self._router.setsockopt(zmq.ROUTER_MANDATORY, 0)
-        for sock, endpoint, key in ((self._pub, data_endpoint or self.stream.data_endpoint, "stream.data_endpoint"),
-                                    (self._router, control_endpoint or self.stream.control_endpoint,
-                                     "stream.control_endpoint")):
+        # A frame this long is not even read: libzmq drops the connection (docs/protocol.md section 1).
+        self._router.setsockopt(zmq.MAXMSGSIZE, self.stream.max_request_bytes * TRANSPORT_LIMIT_FACTOR)
+        if self._auth is not None:
+            self._auth.secure(self._pub)
+            self._auth.secure(self._router)
+        for sock, endpoint, key in ((self._pub, data_endpoint, "stream.data_endpoint"),
+                                    (self._router, control_endpoint, "stream.control_endpoint")):
             try:
                 sock.bind(endpoint)
             except zmq.ZMQError as exc:
@@ -111,6 +140,9 @@ class Daemon:
         for sock in (self._pub, self._router):
             if sock is not None:
                 sock.close(linger=0)
+        if self._auth is not None:  # its ZAP socket lives on the context: stopped before the context ends
+            self._auth.stop()
+            self._auth = None
         if self._ctx is not None:
             self._ctx.term()
         self._pub = self._router = self._ctx = None
@@ -182,7 +214,7 @@ class Daemon:
             st.update(scan_id=ev.scan_id, output=ev.path, sweeps=ev.sweeps, points=ev.n_points, points_done=0,
                       points_total=ev.n_points * ev.sweeps, eta_s=ev.estimated_duration_s, sweep=None, point=None,
                       delay_ps=None, last_error=None, shots_per_s=None, rejected_fraction=None,
-                      excess_noise_median=None)
+                      excess_noise_median=None, fault=None, retries=0)
             self._map = {"delta_od": np.full((ev.n_points, px), np.nan),
                          "delta_od_errors": np.full((ev.n_points, px), np.nan),
                          "delay_ps": self._job_delays, "wavelength_nm": self.bench.settings.detector.wavelengths_nm(),
@@ -206,7 +238,8 @@ class Daemon:
                           {"sweep": ev.sweep, "index": ev.index, "position_in_sweep": ev.position_in_sweep,
                            "delay_ps": ev.delay_ps, "points_done": ev.points_done, "points_total": ev.points_total,
                            "pairs": r.pairs, "rejected_pairs": r.rejected_pairs, "gaps": r.gaps, "shots": r.shots,
-                           "eta_s": ev.eta_s, "shots_per_s": ev.shots_per_s},
+                           "eta_s": ev.eta_s, "shots_per_s": ev.shots_per_s, "phase_breaks": r.phase_breaks,
+                           "unpaired_shots": r.unpaired_shots, "retries": ev.retries, "restarts": ev.restarts},
                           {"delta_od": r.delta_od, "delta_od_error": r.delta_od_error, "noise_floor": r.floor,
                            "mean_counts_pump_on": r.mean_counts_on, "mean_counts_pump_off": r.mean_counts_off,
                            "masked": r.masked, "combined_delta_od": c.delta_od, "combined_delta_od_error": c.delta_od_error,
@@ -222,8 +255,17 @@ class Daemon:
                           {"delta_od": ev.delta_od, "delta_od_error": ev.delta_od_error, "pairs": ev.pairs,
                            "delay_ps": self._map["delay_ps"] if self._map else np.zeros(0),
                            "wavelength_nm": self.bench.settings.detector.wavelengths_nm()})
+        elif isinstance(ev, InstrumentFault):
+            st["retries"] = ev.retries
+            if ev.action in ("paused", "still_failing"):
+                st["fault"] = {"instrument": ev.instrument, "error": ev.error, "time": ev.time_s}
+                st["last_error"] = ev.error
+            elif ev.action == "cleared":
+                st["fault"] = None
+            self._publish_status()
         elif isinstance(ev, ScanEnded):
-            st.update(last_scan_state=ev.state, last_scan_id=ev.scan_id, last_error=ev.reason or None, eta_s=0.0)
+            st.update(last_scan_state=ev.state, last_scan_id=ev.scan_id, last_error=ev.reason or None, eta_s=0.0,
+                      fault=None)
             if self.exit_when_idle:
                 self._stop = True
             self._publish("scan", ev.scan_id, {"event": ev.state, "path": ev.path, "reason": ev.reason,
@@ -244,15 +286,29 @@ class Daemon:
             listener(ev)
 
     # ------------------------------------------------------------------ control
-    def _handle_requests(self, limit: int = 100) -> None:
+    def _handle_requests(self, limit: int = 100, budget_s: float = 0.02) -> None:
+        """Answer at most ``limit`` waiting requests, and stop early once ``budget_s`` has been spent, so
+        that a flood (or a run of slow requests) never holds back the events and heartbeats of the loop.
+        ZeroMQ fair-queues the clients: each turn takes requests from every client in rotation."""
         assert self._router is not None
+        deadline = time.monotonic() + budget_s
         for _ in range(limit):
+            if time.monotonic() > deadline:
+                return
             try:
-                frames = self._router.recv_multipart(flags=zmq.NOBLOCK, copy=True)
+                frames = self._router.recv_multipart(flags=zmq.NOBLOCK, copy=self._auth is None)
             except zmq.Again:
                 return
+            if self._auth is not None:  # the rights the ZAP handler gave this connection ride on its frames
+                self._peer = rights_of(frames[-1])
+                frames = [f.bytes for f in frames]
             identity, body = frames[0], frames[1:]
-            reply = self._reply_to(body)
+            try:
+                reply = self._reply_to(body)
+            except Exception:  # noqa: BLE001 - even the error reply failed: answer without echoing anything
+                log.exception("could not answer a request")
+                reply = protocol.encode_error("internal_error", "the reply could not be built", None,
+                                              state=self.runner.state.value)
             try:
                 self._router.send_multipart([identity, *reply], flags=zmq.NOBLOCK, copy=False)
             except zmq.ZMQError as exc:  # the client went away: nothing to do
@@ -260,19 +316,25 @@ class Daemon:
 
     def _reply_to(self, body: list[bytes]) -> list[Any]:
         request_id = None
+        max_bytes = self.stream.max_request_bytes
         try:
-            req = protocol.decode_request(body)
+            # Framing and size are checked before a byte is parsed; the id is then echoed only if it nests
+            # shallowly enough to be encoded again (a request nested deeper is refused whole).
+            req = protocol.decode_request(body, max_bytes)
             request_id = req.get("id")
             cmd = req["cmd"]
             handler = getattr(self, f"_cmd_{cmd}", None) if cmd.isidentifier() else None
             if handler is None:
-                raise ProtocolError(f"unknown command {cmd!r}; commands: {', '.join(self.commands())}",
+                shown = cmd if len(cmd) <= 40 else cmd[:40] + "..."
+                raise ProtocolError(f"unknown command {shown!r}; commands: {', '.join(self.commands())}",
                                     code="unknown_command")
+            if self._auth is not None:
+                check_command(*self._peer, cmd)
             fields, arrays = handler(req)
             return protocol.encode_reply(request_id, arrays, **fields)
         except ShotpairError as exc:
             if request_id is None:
-                request_id = _id_of(body)
+                request_id = _id_of(body, max_bytes)
             return protocol.encode_error(_code(exc), str(exc), request_id, state=self.runner.state.value)
         except Exception as exc:  # noqa: BLE001 - a bug answers with an error; the daemon keeps running
             log.exception("error while answering a request")
@@ -346,7 +408,11 @@ class Daemon:
 
     def _cmd_move(self, req: dict[str, Any]) -> tuple[dict[str, Any], None]:
         delay = req.get("delay_ps")
-        if isinstance(delay, bool) or not isinstance(delay, (int, float)) or not np.isfinite(delay):
+        try:  # a JSON integer may be far beyond a double (np.isfinite raised TypeError for 10**400)
+            finite = not isinstance(delay, bool) and isinstance(delay, (int, float)) and math.isfinite(float(delay))
+        except OverflowError:
+            finite = False
+        if not finite:
             raise ProtocolError("move needs a finite number 'delay_ps'", code="bad_argument")
         self._require("move")
         position = self.runner.move(float(delay))
@@ -359,15 +425,17 @@ class Daemon:
         return {"state": self.runner.state.value, "stopping": True}, None
 
 
-def _id_of(body: list[bytes]) -> Any:
-    """The ``id`` of a request that failed to decode, when it is at least a JSON object with one."""
-    import json
-
+def _id_of(body: list[bytes], max_bytes: int) -> Any:
+    """The ``id`` of a request that failed to decode, when it is one frame of at most ``max_bytes`` holding a
+    JSON object with an ``id`` that nests no deeper than a request may (else None: nothing else is parsed)."""
+    if len(body) != 1 or len(body[0]) > max_bytes:
+        return None
     try:
-        obj = json.loads(body[0]) if len(body) == 1 else None
+        obj = protocol.loads_json(bytes(body[0]))
     except (ValueError, RecursionError):
         return None
-    return obj.get("id") if isinstance(obj, dict) else None
+    found = obj.get("id") if isinstance(obj, dict) else None
+    return found if protocol.nesting_depth(found, protocol.MAX_REQUEST_DEPTH) <= protocol.MAX_REQUEST_DEPTH else None
 
 
 def _toml_text(table: dict[str, Any]) -> str:

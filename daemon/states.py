@@ -19,12 +19,13 @@ class RunState(str, enum.Enum):
     MOVING = "moving"        # an alignment move requested while idle
     PREPARING = "preparing"  # scan accepted: homing, dark, opening the shutter
     ACQUIRING = "acquiring"  # moving and reading shots
-    PAUSED = "paused"        # between points, shutter closed, waiting for resume
+    PAUSED = "paused"        # shutter closed, waiting for resume (asked by a user, or an instrument fault)
     STOPPING = "stopping"    # closing the shutter, stopping motion, closing the file
 
 
 #: (state, action) -> next state. Actions come from users (start, pause, resume, abort) or from the
-#: runner itself (ready, finish, fail, stopped, moved).
+#: runner itself (ready, finish, fail, stopped, moved, and fault: an instrument still failing after its
+#: retries pauses the scan; resume then first tries that instrument again, and stays paused if it fails).
 TRANSITIONS: dict[tuple[RunState, str], RunState] = {
     (RunState.IDLE, "start"): RunState.PREPARING,
     (RunState.IDLE, "move"): RunState.MOVING,
@@ -33,6 +34,7 @@ TRANSITIONS: dict[tuple[RunState, str], RunState] = {
     (RunState.PREPARING, "abort"): RunState.STOPPING,
     (RunState.PREPARING, "fail"): RunState.STOPPING,
     (RunState.ACQUIRING, "pause"): RunState.PAUSED,
+    (RunState.ACQUIRING, "fault"): RunState.PAUSED,
     (RunState.ACQUIRING, "abort"): RunState.STOPPING,
     (RunState.ACQUIRING, "finish"): RunState.STOPPING,
     (RunState.ACQUIRING, "fail"): RunState.STOPPING,

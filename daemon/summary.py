@@ -69,5 +69,5 @@ def summarise(path: str | os.PathLike[str]) -> str:
             lines.append(f"truth       simulated bench: reduced chi-square against the stored truth {chi2:.3g} "
                          "(about 1 when they differ by noise alone)")
         if "log" in e:
-            lines += [f"log         {_text(x)}" for x in e["log"][()]]
+            lines += [f"log         {_text(x)}" for x in e["log"][()] if _text(x)]  # unused lines are empty
     return "\n".join(lines)

@@ -551,7 +551,7 @@ class CommandSet:
         text = self.render(operation, values)
         try:
             data = text.encode(self.encoding)
-        except UnicodeEncodeError as exc:
+        except UnicodeError as exc:  # UnicodeEncodeError, or the plain UnicodeError of codecs such as idna
             raise ValueError(f"{self.instrument}: {operation} {text!r} cannot be encoded as {self.encoding}") from exc
         if self.write_terminator in data:
             raise ValueError(f"{self.instrument}: {operation} {text!r} contains the write terminator")
@@ -591,7 +591,7 @@ class CommandSet:
         if isinstance(line, (bytes, bytearray)):
             try:
                 text = bytes(line).decode(self.encoding)
-            except UnicodeDecodeError:
+            except UnicodeError:  # UnicodeDecodeError, or the plain UnicodeError of idna, punycode...
                 raise InstrumentReplyError(f"reply to {what} is not {self.encoding} text: {_show(bytes(line))}",
                                            instrument=self.instrument) from None
         else:
@@ -670,8 +670,11 @@ def compile_commands(
         raise ValueError(f"unknown instrument kind {kind!r}; kinds: {', '.join(OPERATIONS)}")
     specs = OPERATIONS[kind]
     try:
-        codecs.lookup(encoding)
+        # rot13, base64, zlib... are codecs but not text encodings: str.encode refuses them (LookupError)
+        text_codec = getattr(codecs.lookup(encoding), "_is_text_encoding", True)
     except (LookupError, TypeError):
+        text_codec = False
+    if not text_codec:
         raise ConfigError("unknown text encoding", key_path=f"{key_path}.encoding", value=encoding,
                           allowed="a Python codec name such as ascii, latin-1, utf-8") from None
     if not isinstance(write_terminator, str) or not write_terminator:
@@ -679,7 +682,7 @@ def compile_commands(
                           value=write_terminator, allowed='"\\r\\n", "\\n" or "\\r"')
     try:
         terminator = write_terminator.encode(encoding)
-    except UnicodeEncodeError:
+    except UnicodeError:  # also the codec "undefined", which refuses everything
         raise ConfigError(f"the write terminator cannot be encoded as {encoding}",
                           key_path=f"{key_path}.write_terminator", value=write_terminator) from None
     if not isinstance(commands, Mapping):
@@ -718,7 +721,7 @@ def compile_commands(
         literal = "".join(piece[0] for piece in cmd.template.pieces)
         try:
             encoded = literal.encode(encoding)
-        except UnicodeEncodeError:
+        except UnicodeError:
             raise ConfigError(f"the template holds text that {encoding} cannot encode",
                               key_path=f"{cmd.key_path}.send", value=cmd.template.text) from None
         if terminator in encoded:

@@ -80,6 +80,9 @@ _DECIMAL_RE = re.compile(r"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?
 _NONDECIMAL_RE = re.compile(r"#(?:[Hh]([0-9A-Fa-f]+)|[Qq]([0-7]+)|[Bb]([01]+))")
 _ERROR_RE = re.compile(r'([+-]?[0-9]+)\s*,\s*"((?:[^"]|"")*)"')
 _DIGITS = b"0123456789"
+#: Longest decimal integer parsed: Python's int() refuses more than 4300 digits (ValueError, a guard against
+#: quadratic conversion time), and no instrument has a reason to send even a hundred.
+_MAX_INT_DIGITS = 1000
 
 
 def _show(data: bytes | str, limit: int = 40) -> str:
@@ -557,7 +560,7 @@ def parse_error(text: str, *, instrument: str = "?") -> ErrorEntry:
         Anything that is not an integer, a comma and a quoted string.
     """
     match = _ERROR_RE.fullmatch(_text_arg(text, "SYSTem:ERRor?", instrument))
-    if match is None:
+    if match is None or len(match.group(1)) > _MAX_INT_DIGITS:
         raise InstrumentReplyError(f'SYSTem:ERRor? reply must be <code>,"<message>": {_show(text)}',
                                    instrument=instrument)
     return ErrorEntry(int(match.group(1)), match.group(2).replace('""', '"'))
@@ -585,13 +588,13 @@ def parse_int(text: str, *, instrument: str = "?") -> int:
     Raises
     ------
     InstrumentReplyError
-        Anything else, including ``1.0``, ``1E3`` and blanks inside the number.
+        Anything else, including ``1.0``, ``1E3``, blanks inside the number and more than 1000 digits.
     """
     word = _text_arg(text, "integer", instrument)
-    if _NR1_RE.fullmatch(word):
+    if _NR1_RE.fullmatch(word) and len(word) <= _MAX_INT_DIGITS:
         return int(word)
     match = _NONDECIMAL_RE.fullmatch(word)
-    if match is not None:
+    if match is not None and len(word) <= _MAX_INT_DIGITS:  # a longer one would exceed str()'s digit limit
         hex_, oct_, bin_ = match.groups()
         return int(hex_, 16) if hex_ else int(oct_, 8) if oct_ else int(bin_, 2)
     raise InstrumentReplyError(f"expected an integer, got {_show(text)}", instrument=instrument)

@@ -77,12 +77,14 @@ ERROR_CODES = {"bad_request", "unknown_command", "bad_argument", "illegal_state"
 COMMANDS = ["status", "start", "pause", "resume", "abort", "snapshot", "move", "shutdown"]
 STATUS = {"state", "scan_id", "output", "sweep", "sweeps", "point", "points", "points_done", "points_total",
           "delay_ps", "shots_per_s", "rejected_fraction", "excess_noise_median", "eta_s", "last_error",
-          "last_scan_state", "last_scan_id", "version", "protocol", "bench", "data_endpoint", "control_endpoint", "dropped_events"}
+          "last_scan_state", "last_scan_id", "version", "protocol", "bench", "data_endpoint", "control_endpoint", "dropped_events",
+          "fault", "retries"}
 FIELDS = {
     "status": STATUS,
     "block": {"sweep", "index", "delay_ps", "shots_done", "shots_target", "pairs"},
     "point": {"sweep", "index", "position_in_sweep", "delay_ps", "points_done", "points_total", "pairs",
-              "rejected_pairs", "gaps", "shots", "eta_s", "shots_per_s"},
+              "rejected_pairs", "gaps", "shots", "eta_s", "shots_per_s", "phase_breaks", "unpaired_shots", "retries",
+              "restarts"},
     "sweep": {"sweep", "sweeps"},
     "log": {"level", "message"},
     ("scan", "started"): {"event", "path", "n_points", "sweeps", "shots_per_point", "estimated_duration_s"},

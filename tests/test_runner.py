@@ -14,7 +14,7 @@ from shotpair.daemon.events import ScanEnded, StateChanged
 from shotpair.daemon.plan import make_plan
 from shotpair.daemon.runner import Runner, ScanJob, new_scan_id
 from shotpair.drivers import registry
-from shotpair.drivers.errors import InstrumentTimeout
+from shotpair.drivers.errors import InstrumentError
 from shotpair.simulators.instruments import make_detector
 
 TIMEOUT_S = 60.0
@@ -123,6 +123,8 @@ def test_abort_leaves_bench_safe_and_file_marked(small_scan):
 
 
 def test_instrument_error_mid_scan(small_scan):
+    # An error that is not worth retrying (a refusal; timeouts, garbled replies and lost connections are
+    # retried, see test_faults.py) ends the scan with the bench safe and the file marked aborted.
     calls = {"n": 0}
 
     def flaky(name, options, context):
@@ -132,7 +134,7 @@ def test_instrument_error_mid_scan(small_scan):
         def acquire(n_shots, timeout_s):
             calls["n"] += 1
             if calls["n"] == 4:
-                raise InstrumentTimeout("no frames within the timeout", instrument=name, timeout_s=timeout_s)
+                raise InstrumentError("refused the acquisition (trigger input not armed)", instrument=name)
             return real(n_shots, timeout_s)
 
         det.acquire = acquire
@@ -142,7 +144,7 @@ def test_instrument_error_mid_scan(small_scan):
     runner, bench, job = start(small_scan(shots=200, name="flaky"), driver="flaky")
     seen = events_until(runner, is_end)
     end = seen[-1]
-    assert end.state == "aborted" and "detector" in end.reason and "timeout" in end.reason
+    assert end.state == "aborted" and "detector" in end.reason and "trigger input" in end.reason
     assert bench.simulation.shutter_open is False
     with h5py.File(job.output, "r") as f:
         assert f["entry/state"][()].decode() == "aborted"
