@@ -46,7 +46,7 @@ ERROR_CODES = ("bad_request", "unknown_command", "bad_argument", "illegal_state"
 _ALLOWED_KINDS = "biuf"  # bool, signed, unsigned, float: no objects, no strings on the wire
 MAX_HEADER_BYTES = 1 << 20
 #: Deepest nesting of arrays and objects a request may have (RFC 8259 section 9 lets a parser limit it):
-#: a scan table needs 4; far deeper ones could not even be echoed back without exhausting the stack.
+#: a scan table needs 5; far deeper ones could not even be echoed back without exhausting the stack.
 MAX_REQUEST_DEPTH = 32
 
 

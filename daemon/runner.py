@@ -3,10 +3,12 @@
 It talks to the rest only through bounded queues: commands in (abort, pause, resume), events out. The
 loop never waits for whoever reads the events: progress events that find the queue full are dropped
 and counted (the end-of-scan event is always delivered). Persist before publish: a point is flushed
-to HDF5 before its event is put on the queue. Every exit path leaves the bench safe (shutter closed,
-axis stopped) and the file marked complete or aborted with the reason. Instrument faults during the
-acquisition are retried within a budget and then pause the scan until a resume finds the instrument
-answering (daemon/faults.py, docs/protocol.md 8.1); a point in doubt is measured again from its start.
+and fsync'ed to HDF5 before its event is put on the queue. A resumed scan (ScanJob.resume, built by
+daemon/resume.py) starts from the points committed in its file and skips them. Every exit path leaves
+the bench safe (shutter closed, axis stopped) and the file marked complete or aborted with the reason.
+Instrument faults during the acquisition are retried within a budget and then pause the scan until a
+resume finds the instrument answering (daemon/faults.py, docs/protocol.md 8.1); a point in doubt is
+measured again from its start.
 """
 
 from __future__ import annotations
@@ -464,8 +466,8 @@ class Runner:
                 if merged is not None:
                     store.write_combined(index, merged, sync=False)
             store.log(f"resumed (run segment {segment}): {done} of {completed.size} points were in the file")
-        except BaseException:
-            store.finish("aborted", "the resume could not start")
+        except BaseException as exc:
+            store.finish("aborted", f"the resume could not start: {exc}")
             raise
         self._start = (completed, combined)
         return store

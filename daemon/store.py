@@ -190,6 +190,26 @@ def unique_path(path: str | os.PathLike[str]) -> Path:
     raise StorageError("no free file name", path=str(p))
 
 
+class _Opened:
+    """A group's datasets, each opened once: looking one up by name costs more than writing a row to it."""
+
+    def __init__(self, group: h5py.Group) -> None:
+        self._group = group
+        self._open: dict[str, h5py.Dataset] = {}
+        self._has: dict[str, bool] = {}
+
+    def __getitem__(self, name: str) -> h5py.Dataset:
+        ds = self._open.get(name)
+        if ds is None:
+            ds = self._open[name] = self._group[name]
+        return ds
+
+    def __contains__(self, name: str) -> bool:
+        if name not in self._has:
+            self._has[name] = name in self._group
+        return self._has[name]
+
+
 class ScanStore:
     """One open output file for one scan.
 
@@ -204,6 +224,8 @@ class ScanStore:
         # h5py: get_vfd_handle() returns the POSIX file descriptor for the default "sec2" driver.
         self._fd = int(file.id.get_vfd_handle()) if file.driver == "sec2" else None
         self.segment = 0
+        self._g = {name: _Opened(self._e[name]) for name in ("sweeps", "diagnostics", "delta_od", "accumulator")
+                   if name in self._e}
         #: Seconds the last write_point took in all, and in flush + fsync (both commit steps).
         self.last_write_s = self.last_commit_s = 0.0
 
@@ -549,7 +571,7 @@ class ScanStore:
             t1 = time.perf_counter()
             self._sync()
             t2 = time.perf_counter()
-            self._e["sweeps/completed"][sweep, index] = True
+            self._g["sweeps"]["completed"][sweep, index] = True
             self.write_combined(index, combined, sync=False)
             t3 = time.perf_counter()
             self._sync()
@@ -560,7 +582,7 @@ class ScanStore:
 
     def write_combined(self, index: int, combined: Any, *, sync: bool = True) -> None:
         """Write the running average over sweeps at grid point ``index`` (the main map and its diagnostics)."""
-        main, dg = self._e["delta_od"], self._e["diagnostics"]
+        main, dg = self._g["delta_od"], self._g["diagnostics"]
         main["delta_od"][index] = combined.delta_od
         main["delta_od_errors"][index] = combined.delta_od_error
         main["pairs"][index] = int(combined.pairs)
@@ -572,13 +594,13 @@ class ScanStore:
     def _write_point_data(self, sweep: int, index: int, result: Any, *, position_mm: float,
                           delay_readback_ps: float, measured_at_s: float, generator_ps: float, retries: int,
                           restarts: int) -> None:
-        sw, dg = self._e["sweeps"], self._e["diagnostics"]
+        sw, dg = self._g["sweeps"], self._g["diagnostics"]
         sw["delta_od"][sweep, index] = result.delta_od
         sw["delta_od_errors"][sweep, index] = result.delta_od_error
         dg["segment"][sweep, index] = self.segment
         if isinstance(result, PointResult):  # test doubles carry only the derived quantities
             arrays, scalars = accumulator_fields()
-            acc = self._e["accumulator"]
+            acc = self._g["accumulator"]
             for name in arrays:
                 acc[name][sweep, index] = getattr(result, name)
             for name in scalars:

@@ -672,7 +672,7 @@ def compile_commands(
     try:
         # rot13, base64, zlib... are codecs but not text encodings: str.encode refuses them (LookupError)
         text_codec = getattr(codecs.lookup(encoding), "_is_text_encoding", True)
-    except (LookupError, TypeError):
+    except (LookupError, TypeError, ValueError):  # ValueError: a NUL in the name
         text_codec = False
     if not text_codec:
         raise ConfigError("unknown text encoding", key_path=f"{key_path}.encoding", value=encoding,

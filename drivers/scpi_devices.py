@@ -111,7 +111,10 @@ def _range(text: str, *, instrument: str) -> tuple[float, float]:
 def _seconds_to_ps(text: str, *, instrument: str) -> float:
     """A reply in s → ps, through the exact decimal (``1.2345E-09`` → 1234.5, not 1234.4999999999998)."""
     parse_float(text, instrument=instrument)  # refuses what is not an SCPI decimal number
-    return float(Decimal(text.strip()).scaleb(12))
+    value = float(Decimal(text.strip()).scaleb(12))
+    if not math.isfinite(value):
+        raise InstrumentReplyError(f"delay {text.strip()!r} s is out of any range", instrument=instrument)
+    return value
 
 
 def _range_ps(text: str, *, instrument: str) -> tuple[float, float]:

@@ -502,7 +502,7 @@ def _link(kind: str, name: str, options: Mapping[str, Any], model: type[Template
                                 write_terminator=opts.write_terminator)
     try:
         opts.read_terminator.encode(opts.encoding)
-    except UnicodeEncodeError:
+    except UnicodeError:  # encode errors, and codecs such as idna that raise the base class
         raise ConfigError(f"the read terminator cannot be encoded as {opts.encoding}",
                           key_path=f"{key}.read_terminator", value=opts.read_terminator) from None
     # Transport options first on their own key path (make_transport names the address's otherwise).

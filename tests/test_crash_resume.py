@@ -455,8 +455,13 @@ def test_a_point_is_committed_in_two_durable_steps(tmp_path, monkeypatch):
 
     def spy_fsync(fd: int) -> None:
         synced_fds.append(fd)
-        # what the file holds when each fsync is asked for: (point data there, completed flag set)
-        seen.append((bool(np.isfinite(store._e["sweeps/delta_od"][0, 1]).all()), bool(store._e["sweeps/completed"][0, 1])))
+        # what the OS holds of the file when each fsync is asked for (its bytes, read through another
+        # descriptor into a copy, as a crash would leave them): (point data there, completed flag set)
+        copy = tmp_path / f"copy{len(seen)}.h5"
+        copy.write_bytes((tmp_path / "c.h5").read_bytes())
+        with h5py.File(copy, "r", locking=False) as f:
+            seen.append((bool(np.isfinite(f["entry/sweeps/delta_od"][0, 1]).all()),
+                         bool(f["entry/accumulator/count"][0, 1].sum() == 12), bool(f["entry/sweeps/completed"][0, 1])))
         real_fsync(fd)
 
     monkeypatch.setattr(store_module.os, "fsync", spy_fsync)
@@ -464,7 +469,7 @@ def test_a_point_is_committed_in_two_durable_steps(tmp_path, monkeypatch):
     r = PointResult.combine([r, PointResult(np.full(4, 3), np.full(4, 0.01), np.full(4, 1e-6), np.ones(4),
                                             np.ones(4), np.ones(4), np.zeros(4, np.int64), np.zeros(4, np.int64))])
     store.write_point(0, 1, r, r, position_mm=0.0, delay_readback_ps=0.0, measured_at_s=0.0)
-    assert seen == [(True, False), (True, True)]  # data durable first, then the flag that says it is there
+    assert seen == [(True, True, False), (True, True, True)]  # data durable first, then the flag saying so
     # h5py: get_vfd_handle() is the file's own descriptor (sec2 driver): the same file as on disk
     assert all(os.fstat(fd).st_ino == os.stat(tmp_path / "c.h5").st_ino for fd in synced_fds)
     assert store.last_commit_s > 0.0

@@ -229,10 +229,11 @@ def test_template_replies_only_reply_errors(encoding, op, line):
             assert not isinstance(value, float) or math.isfinite(value)
 
 
-@pytest.mark.parametrize("encoding", ["rot13", "base64", "zlib", "undefined"])
+@pytest.mark.parametrize("encoding", ["rot13", "base64", "zlib", "undefined", "a\x00b"])
 def test_codecs_that_are_not_text_encodings_are_config_errors(encoding):
-    # str.encode refuses binary codecs with LookupError, and the codec "undefined" with UnicodeError: both
-    # escaped from compile_commands (and so from `shotpair check` on a bench file).
+    # str.encode refuses binary codecs with LookupError, the codec "undefined" with UnicodeError, and
+    # codecs.lookup a name with a NUL (TOML can write "\u0000") with ValueError: all escaped from
+    # compile_commands (and so from `shotpair check` on a bench file).
     with pytest.raises(ConfigError) as info:
         compile_commands("shutter", SHUTTER, instrument="shutter", key_path="bench.shutter.options",
                          encoding=encoding)

@@ -23,6 +23,7 @@ import tomllib
 from pathlib import Path
 from typing import Any, Iterator
 
+import h5py
 import pytest
 import zmq
 from hypothesis import HealthCheck, assume, given, settings
@@ -129,6 +130,9 @@ def assert_complete(control: ControlClient, data: str, scan_id: str) -> None:
     assert end["points_done"] == end["points_total"] > 0, end
     snap = control.snapshot()
     assert snap["scan_id"] == scan_id and bool(snap.arrays["completed"].all())
+    with h5py.File(end["output"], "r") as f:  # every point is in the file, and the file says complete
+        assert f["entry/state"][()].decode() == "complete"
+        assert bool(f["entry/sweeps/completed"][()].all())
 
 
 # --------------------------------------------------------------------------------------- what to expect
