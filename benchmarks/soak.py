@@ -6,7 +6,8 @@ about 20 s).
 
 A ``shotpair serve`` subprocess (simulated bench, real time, not --fast; dropped frames switched off in the
 simulator so that any gap is the software's) runs one scan of ``minutes × 60 × 1000 / shots_per_point``
-delay points. This process subscribes to every topic, asks ``status`` twice a second, and samples the
+point measurements: ``--grid`` delay points (default 10) swept as often as that takes, so that after the
+first sweep every structure the daemon keeps per grid point exists and memory must stay flat. This process subscribes to every topic, asks ``status`` twice a second, and samples the
 daemon's resident memory (/proc/PID/status VmRSS) every 5 s. At the end it reports:
 
 - shots acquired (from the file) vs planned; frame gaps and unpaired shots inside blocks;
@@ -93,16 +94,18 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--minutes", type=float, default=10.0)
     ap.add_argument("--shots-per-point", type=int, default=5000)
+    ap.add_argument("--grid", type=int, default=10, help="delay points in the grid")
     args = ap.parse_args(argv)
     rep_hz = 1000.0
-    points = max(2, round(args.minutes * 60 * rep_hz / args.shots_per_point))
+    grid = max(2, args.grid)
+    sweeps = max(1, round(args.minutes * 60 * rep_hz / args.shots_per_point / grid))
+    points = grid * sweeps
     with tempfile.TemporaryDirectory() as tmpname:
         tmp = Path(tmpname)
         output = tmp / "soak.h5"
-        scan = {"title": "soak", "shots_per_point": args.shots_per_point, "sweeps": 1, "order": "ascending",
+        scan = {"title": "soak", "shots_per_point": args.shots_per_point, "sweeps": sweeps, "order": "alternating",
                 "output": str(output),
-                "delays": [{"kind": "linear", "start_ps": -2.0, "stop_ps": -2.0 + 0.01 * (points - 1),
-                            "step_ps": 0.01}]}
+                "delays": [{"kind": "linear", "start_ps": -2.0, "stop_ps": -2.0 + 0.5 * (grid - 1), "step_ps": 0.5}]}
         serve = subprocess.Popen([sys.executable, "-m", "shotpair.daemon.cli", "serve", str(bench_file(tmp)),
                                   "--data", "tcp://127.0.0.1:*", "--control", "tcp://127.0.0.1:*"],
                                  stdout=subprocess.PIPE, stderr=subprocess.PIPE, stdin=subprocess.DEVNULL, text=True)
@@ -147,7 +150,7 @@ def main(argv: list[str] | None = None) -> int:
                 shots = int(dg["shots"][()].sum())
                 gaps = int(dg["gaps"][()].sum())
                 unpaired = int(dg["unpaired_shots"][()].sum())
-                measured_at = dg["measured_at"][()][0]
+                measured_at = np.sort(dg["measured_at"][()].ravel())
                 state = f["entry/state"][()].decode()
         finally:
             if control and serve.poll() is None:
@@ -166,8 +169,8 @@ def main(argv: list[str] | None = None) -> int:
     nominal = args.shots_per_point / rep_hz
     lat_ms = np.asarray(latencies) * 1e3
     mem = [m for _, m in memory]
-    print(f"soak: {args.minutes:g} min asked, {elapsed / 60:.2f} min run, scan {state}, {points} points of "
-          f"{args.shots_per_point} shots at {rep_hz:g} Hz")
+    print(f"soak: {args.minutes:g} min asked, {elapsed / 60:.2f} min run, scan {state}, {sweeps} sweeps of {grid} "
+          f"points of {args.shots_per_point} shots at {rep_hz:g} Hz")
     print(f"shots       {shots:,} acquired of {planned:,} planned; {gaps} frame gaps and {unpaired} unpaired "
           "shots inside blocks")
     print(f"per point   median {statistics.median(per_point):.3f} s, max {per_point.max():.3f} s "

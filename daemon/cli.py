@@ -31,7 +31,7 @@ from .remote import add_remote_commands
 from .simulate_cmd import add_simulate_command
 from .runner import ScanJob, new_scan_id
 from .server import Daemon
-from .store import software_version, unique_path
+from .store import check_scan_space, software_version, unique_path
 from .summary import summarise
 
 __all__ = ["main", "build_parser"]
@@ -159,60 +159,21 @@ def cmd_run(args: argparse.Namespace) -> int:
     target = args.output or scan.output
     check_output(target, cfg.path, "--output" if args.output else "scan.output")
     output = unique_path(target)
+    det = bench_cfg.bench.detector
+    # Refused here (exit 2) before the bench is built; the runner repeats the check and reports a warning.
+    check_scan_space(output, plan.n_points, det.pixels, plan.sweeps, has_reference=det.has_reference,
+                     text_bytes=len(cfg.text))
     stream = bench_cfg.config.stream or cfg.stream
     keys = _server_keys(args, bench_cfg if bench_cfg.config.stream else cfg, stream)
     bench = build_bench(bench_cfg.bench, (bench_cfg.config.simulation or cfg.config.simulation),
                         realtime=not args.fast, seed=scan.seed, config_path=bench_cfg.path)
     print(describe_plan(cfg, bench_cfg, plan, str(output)), file=sys.stderr)
-    bench.connect()
-    daemon = Daemon(bench, bench_cfg, stream, keys)
-    try:
-        _bind(daemon, args, fallback=True)
-        print(f"live data on {daemon.data_endpoint}, control on {daemon.control_endpoint} "
-              "(`shotpair monitor` can attach)", file=sys.stderr)
-        progress = ProgressPrinter()
-        outcome: dict[str, object] = {}
-        interrupted: list[str] = []
-
-        def on_event(ev: object) -> None:
-            if isinstance(ev, ScanStarted):
-                print(f"writing {ev.path}", file=sys.stderr)
-            elif isinstance(ev, PointSaved):
-                outcome["last"] = ev
-                progress.point(ev)
-            elif isinstance(ev, LogEvent):
-                progress.finish()
-                print(f"{ev.level}: {ev.message}", file=sys.stderr)
-            elif isinstance(ev, ScanEnded):
-                progress.finish()
-                print(_summary(ev, outcome.get("last")), file=sys.stderr)  # type: ignore[arg-type]
-                outcome["state"] = ev.state
-
-        def on_signal(signum: int, frame: object) -> None:
-            # Ask the runner to stop and keep serving until its end event: the file is then closed properly.
-            if not interrupted:
-                progress.finish()
-                print("interrupted: stopping safely, the file is kept (marked aborted)...", file=sys.stderr)
-                daemon.runner.abort("interrupted by the user (Ctrl-C)" if signum == signal.SIGINT
-                                    else f"stopped by {signal.Signals(signum).name}")
-            interrupted.append(signal.Signals(signum).name)
-
-        with _handling_signals(on_signal):
-            daemon.listeners.append(on_event)
-            daemon.exit_when_idle = True
-            daemon.start_job(ScanJob(cfg, scan, plan, output, new_scan_id()))
-            daemon.serve()
-    finally:
-        daemon.close()
-        bench.disconnect()
-    if outcome.get("state") == "complete":
-        return EXIT_OK
-    return EXIT_INTERRUPTED if interrupted else EXIT_SCAN_FAILED
+    return _serve_job(args, bench, bench_cfg, stream, keys, ScanJob(cfg, scan, plan, output, new_scan_id()))
 
 
 def _serve_job(args: argparse.Namespace, bench: Bench, bench_cfg: LoadedConfig, stream: StreamSettings,
                keys: ServerKeys | None, job: ScanJob, verb: str = "writing") -> int:
-    """Serve one scan on a built bench until it ends (the body `resume` runs; `run` does the same inline):
+    """Serve one scan on a built bench until it ends (the body of `run` and `resume`):
     live data and control on the stream endpoints, progress on stderr, Ctrl-C or SIGTERM stop it safely.
     Returns the exit code: 0 complete, 130 interrupted, 1 failed."""
     bench.connect()

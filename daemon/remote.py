@@ -39,6 +39,10 @@ def describe_status(st: dict[str, Any]) -> str:
         if st.get("eta_s") is not None:
             parts.append(f"ETA {format_duration(st['eta_s'])}")
         line += "\n" + ", ".join(parts)
+    fault = st.get("fault")
+    if st.get("state") == "paused" and isinstance(fault, dict):
+        line += (f"\nPAUSED BY A FAULT of {fault.get('instrument')}: {fault.get('error')} "
+                 "(fix it, then `shotpair resume`; or `shotpair abort`)")
     if st.get("output"):
         line += f"\nfile {st['output']}"
     if st.get("last_scan_state") and st.get("state") == "idle":

@@ -29,7 +29,7 @@ from .events import (BlockProgress, Event, InstrumentFault, LogEvent, MoveDone, 
 from .plan import make_plan
 from .runner import Runner, ScanJob, new_scan_id
 from .states import TRANSITIONS, RunState
-from .store import software_version, unique_path
+from .store import check_scan_space, software_version, unique_path
 
 __all__ = ["Daemon", "TRANSPORT_LIMIT_FACTOR"]
 
@@ -375,6 +375,9 @@ class Daemon:
         target = req.get("output") or scan.output
         check_output(target, cfg.path, "output" if req.get("output") else "scan.output")
         output = unique_path(target)
+        det = self.bench.settings.detector
+        check_scan_space(output, plan.n_points, det.pixels, plan.sweeps, has_reference=det.has_reference,
+                         text_bytes=len(cfg.text))  # a scan that cannot fit is refused in the reply
         job = ScanJob(cfg, scan, plan, output, new_scan_id())
         self._job_delays = plan.delays_ps
         self.runner.start(job)

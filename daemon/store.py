@@ -53,7 +53,7 @@ from shotpair.drivers.errors import StorageError
 from .point_result import PointResult
 
 __all__ = ["ScanStore", "unique_path", "software_version", "estimate_file_bytes", "check_free_space",
-           "publish_new_file", "accumulator_fields", "SEGMENT_SLOTS", "LOG_LINES"]
+           "check_scan_space", "publish_new_file", "accumulator_fields", "SEGMENT_SLOTS", "LOG_LINES"]
 
 log = logging.getLogger(__name__)
 
@@ -95,6 +95,13 @@ def estimate_file_bytes(n_points: int, pixels: int, sweeps: int, *, has_referenc
               + 8 * SEGMENT_SLOTS + 2 * (n_points + pixels + sweeps))
     fixed = LOG_LINES * LOG_LINE_BYTES + _REASON_BYTES + 256 * 1024  # log, strings, HDF5 metadata
     return int(8 * values * 1.01) + fixed + 2 * int(text_bytes)
+
+
+def check_scan_space(path: str | os.PathLike[str], n_points: int, pixels: int, sweeps: int, *,
+                     has_reference: bool = False, text_bytes: int = 0) -> str | None:
+    """:func:`check_free_space` for a scan of this size (the early check before anything is built)."""
+    needed = estimate_file_bytes(n_points, pixels, sweeps, has_reference=has_reference, text_bytes=text_bytes)
+    return check_free_space(path, needed)
 
 
 def _nearest_folder(path: Path) -> Path:

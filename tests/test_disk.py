@@ -68,7 +68,7 @@ def test_a_scan_that_cannot_fit_is_refused_before_anything_moves(small_scan, mon
     moves = []
     monkeypatch.setattr(DelayDrive, "prepare", lambda self: moves.append("prepare"))
     fake_free(monkeypatch, 1 * MB)
-    assert main(["run", str(cfg), "--fast", *ENDPOINTS]) == 1
+    assert main(["run", str(cfg), "--fast", *ENDPOINTS]) == 2  # a storage mistake: refused before the bench
     err = capsys.readouterr().err
     assert f"error: {cfg.with_suffix('.h5')}: not enough free disk space" in err
     assert "Traceback" not in err and moves == []
