@@ -62,6 +62,11 @@ def summarise(path: str | os.PathLike[str]) -> str:
         lines.append(f"pairs       {pairs:,} accepted, {rejected:,} rejected "
                      f"({100.0 * rejected / total if total else 0.0:.2f} %), {int(dg['gaps'][()].sum()):,} frame "
                      f"gaps, {int(dg['masked_pixels'][()].sum()):,} masked pixel-pairs")
+        faults = {k: int(dg[k][()].sum()) for k in ("phase_breaks", "retries", "restarts") if k in dg}
+        if faults:
+            lines.append(f"faults      {faults.get('phase_breaks', 0):,} pump phase breaks, "
+                         f"{faults.get('retries', 0):,} instrument retries, "
+                         f"{faults.get('restarts', 0):,} points measured again")
         if "simulation_truth/delta_od" in e and np.isfinite(dod).any():
             truth = e["simulation_truth/delta_od"][()]
             with np.errstate(invalid="ignore", divide="ignore"):

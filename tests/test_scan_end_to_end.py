@@ -153,6 +153,9 @@ def test_show_summarises_a_file(small_scan, capsys, tmp_path):
     n = d["completed"].size
     assert "state complete" in out and f"{n} of {n} points measured" in out
     assert f"{int(d['pairs'].sum()):,} accepted" in out
+    with h5py.File(cfg.with_suffix(".h5"), "r") as f:
+        breaks = int(f["entry/diagnostics/phase_breaks"][()].sum())
+    assert f"faults      {breaks:,} pump phase breaks, 0 instrument retries, 0 points measured again" in out
     chi2 = float(out.split("stored truth ")[1].split()[0])
     assert chi2 == pytest.approx(reduced_chi2(d)[0], rel=1e-2)
     not_h5 = tmp_path / "x.h5"
