@@ -59,7 +59,7 @@ class DelayAxisSettings(_Strict):
     medium: Literal["air", "vacuum"] = Field("air", description="Medium of the delay line (air: Ciddor 1996 group index).")
     centre_wavelength_nm: float = Field(800.0, gt=200.0, lt=2000.0, description="Wavelength of the beam on the stage, for the air group index, nm.")
     home_before_scan: bool = Field(True, description="Home the stage at the start of a scan when it does not know its position.")
-    velocity_mm_per_s: float = Field(50.0, gt=0.0, description="Typical speed, used only to estimate scan durations, mm/s.")
+    velocity_mm_per_s: float = Field(50.0, ge=1e-3, le=1e4, description="Typical speed, used only to estimate scan durations, mm/s.")
     settle_timeout_s: float = Field(30.0, gt=0.0, description="Longest wait for a move to finish and settle, s.")
 
     @field_validator("travel_mm")
@@ -156,7 +156,7 @@ class BenchSettings(_Strict):
     """Everything about the bench: which instruments, how they are calibrated."""
 
     name: str = Field("bench", description="A name for this bench, stored in output files.")
-    repetition_rate_hz: float = Field(1000.0, gt=0.0, le=200_000.0, description="Laser repetition rate, Hz.")
+    repetition_rate_hz: float = Field(1000.0, ge=0.1, le=200_000.0, description="Laser repetition rate, Hz.")
     delay_axis: DelayAxisSettings = Field(default_factory=DelayAxisSettings)
     chopper: ChopperSettings = Field(default_factory=ChopperSettings)
     shutter: ShutterSettings = Field(default_factory=ShutterSettings)

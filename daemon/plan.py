@@ -20,6 +20,8 @@ __all__ = ["ScanPlan", "build_grid_ps", "sweep_orders", "make_plan", "MAX_SEGMEN
 
 #: Delays closer than this are the same point (ps); far below any stage's resolution (1e-6 ps = 0.15 nm).
 _SAME_DELAY_PS = 1e-6
+#: A scan estimated to take longer than this is refused as a mistake (a year, in s).
+_LONGEST_SCAN_S = 365.25 * 86400.0
 #: Most delays all segments together may list before merging (80 MB of float64 while planning).
 MAX_SEGMENT_DELAYS = 10_000_000
 #: Most values of one sweep-resolved array (sweeps x delay points x pixels): the file and the daemon hold
@@ -166,6 +168,14 @@ def _generator_plan(scan: ScanSettings, bench: BenchSettings, config_path: str) 
                     settle_s=gen.settle_s)
 
 
+def _checked(plan: ScanPlan, config_path: str) -> ScanPlan:
+    duration = plan.estimated_duration_s()
+    if not math.isfinite(duration) or duration > _LONGEST_SCAN_S:
+        raise ConfigError("the scan would take longer than a year", file=config_path, key_path="scan",
+                          value=f"{duration:.3g} s", allowed="fewer shots, points or sweeps, or a faster rate")
+    return plan
+
+
 def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<config>") -> ScanPlan:
     """Build the plan; raises ConfigError if a delay lies outside what the delay axis can reach.
 
@@ -173,7 +183,7 @@ def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<con
     settings of the delay generator (delay + its time_zero_ps) and the stage waits at time zero.
     """
     if scan.axis == "generator":
-        return _generator_plan(scan, bench, config_path)
+        return _checked(_generator_plan(scan, bench, config_path), config_path)
     line = bench.delay_axis.delay_line()
     low_ps, high_ps = line.delay_range_ps(bench.delay_axis.travel_mm)
     _check_size(scan, bench, config_path)
@@ -195,5 +205,5 @@ def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<con
     positions = np.clip(positions, lo, hi)  # only rounding at the very ends can step outside
     orders = sweep_orders(grid.size, scan.sweeps, scan.order, scan.seed)
     dark = bench.dark_shots if bench.detector.dark_counts is None else 0
-    return ScanPlan(grid, positions, orders, scan.shots_per_point, dark, bench.repetition_rate_hz,
-                    bench.delay_axis.velocity_mm_per_s)
+    return _checked(ScanPlan(grid, positions, orders, scan.shots_per_point, dark, bench.repetition_rate_hz,
+                    bench.delay_axis.velocity_mm_per_s), config_path)

@@ -62,3 +62,15 @@ def small_scan(tmp_path: Path):
         return path
 
     return make
+
+
+# Property tests explore new examples on every local run; CI (.ci/run sets SHOTPAIR_CI=1) uses a fixed
+# seed per test, so a submission's result does not depend on the draw. Hypothesis documents both
+# settings (`derandomize`, `print_blob`).
+import os as _os
+
+from hypothesis import settings as _hyp_settings
+
+_hyp_settings.register_profile("ci", derandomize=True, print_blob=True)
+if _os.environ.get("SHOTPAIR_CI"):
+    _hyp_settings.load_profile("ci")

@@ -504,3 +504,22 @@ def test_negative_seed_of_a_shuffled_scan_is_a_config_error():
     with pytest.raises(ConfigError, match=r"scan.seed: Input should be greater than or equal to 0"):
         parse_config({"scan": {"shots_per_point": 10, "output": "/tmp/x.h5", "order": "shuffled", "seed": -1,
                                "delays": [{"kind": "list", "delays_ps": [0.0, 1.0]}]}}, "f.toml")
+
+
+def test_a_vanishing_repetition_rate_is_refused(tmp_path):
+    """Found by test_mutated_documents: 5e-324 Hz (the smallest double) passed `gt=0` and made the
+    estimated duration infinite; rates below 0.1 Hz are refused, and so is any scan that would take
+    longer than a year."""
+    text = (REPO / "configs" / "demo.toml").read_text()
+    bad = tmp_path / "slow.toml"
+    bad.write_text(re.sub(r"(?m)^repetition_rate_hz = .*$", "repetition_rate_hz = 5e-324", text))
+    with pytest.raises(ConfigError) as info:
+        load_config(bad)
+    assert "repetition_rate_hz" in str(info.value)
+    long = tmp_path / "long.toml"
+    long.write_text(re.sub(r"(?m)^repetition_rate_hz = .*$", "repetition_rate_hz = 0.1", text)
+                    .replace("shots_per_point = 1000", "shots_per_point = 100000000"))
+    cfg = load_config(long)
+    with pytest.raises(ConfigError) as info:
+        make_plan(cfg.require_scan(), cfg.bench, cfg.path)
+    assert "longer than a year" in str(info.value)
