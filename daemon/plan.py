@@ -141,6 +141,18 @@ class ScanPlan:
         return self.total_shots / self.repetition_rate_hz + self.travel_time_s() + self.total_points * self.settle_s
 
 
+def _refuse_outside(scan: ScanSettings, low_ps: float, high_ps: float, what: str, calibration: str,
+                    config_path: str) -> None:
+    """ConfigError naming the first segment with a delay outside [low_ps, high_ps] (what the axis reaches)."""
+    for i, segment in enumerate(scan.delays):
+        d = _segment_delays(segment)
+        bad = d[(d < low_ps - _SAME_DELAY_PS) | (d > high_ps + _SAME_DELAY_PS)]
+        if bad.size:
+            raise ConfigError(f"{bad.size} delay(s) outside {what}, from {bad.min():.6g} to {bad.max():.6g} ps",
+                              file=config_path, key_path=f"scan.delays[{i}]",
+                              allowed=f"{low_ps:.6g} to {high_ps:.6g} ps with {calibration}")
+
+
 def _generator_plan(scan: ScanSettings, bench: BenchSettings, config_path: str) -> ScanPlan:
     gen = bench.delay_generator
     if gen is None:
@@ -148,15 +160,8 @@ def _generator_plan(scan: ScanSettings, bench: BenchSettings, config_path: str) 
                           key_path="scan.axis", value=scan.axis, allowed="stage, or add a [bench.delay_generator]")
     low_ps, high_ps = gen.delay_range_ps()
     _check_size(scan, bench, config_path)
-    for i, segment in enumerate(scan.delays):
-        d = _segment_delays(segment)
-        bad = d[(d < low_ps - _SAME_DELAY_PS) | (d > high_ps + _SAME_DELAY_PS)]
-        if bad.size:
-            raise ConfigError(
-                f"{bad.size} delay(s) outside the delay generator's range, from {bad.min():.6g} to {bad.max():.6g} ps",
-                file=config_path, key_path=f"scan.delays[{i}]",
-                allowed=(f"{low_ps:.6g} to {high_ps:.6g} ps with range_ps = {list(gen.range_ps)}, "
-                         f"time_zero_ps = {gen.time_zero_ps}"))
+    _refuse_outside(scan, low_ps, high_ps, "the delay generator's range",
+                    f"range_ps = {list(gen.range_ps)}, time_zero_ps = {gen.time_zero_ps}", config_path)
     grid = build_grid_ps(list(scan.delays))
     _check_size(scan, bench, config_path, grid.size)
     settings = np.clip(grid + gen.time_zero_ps, *gen.range_ps)
@@ -187,17 +192,9 @@ def make_plan(scan: ScanSettings, bench: BenchSettings, config_path: str = "<con
     line = bench.delay_axis.delay_line()
     low_ps, high_ps = line.delay_range_ps(bench.delay_axis.travel_mm)
     _check_size(scan, bench, config_path)
-    for i, segment in enumerate(scan.delays):
-        d = _segment_delays(segment)
-        bad = d[(d < low_ps - _SAME_DELAY_PS) | (d > high_ps + _SAME_DELAY_PS)]
-        if bad.size:
-            raise ConfigError(
-                f"{bad.size} delay(s) outside the stage travel, from {bad.min():.6g} to {bad.max():.6g} ps",
-                file=config_path,
-                key_path=f"scan.delays[{i}]",
-                allowed=(f"{low_ps:.6g} to {high_ps:.6g} ps with travel_mm = {list(bench.delay_axis.travel_mm)}, "
-                         f"passes = {line.passes}, time_zero_mm = {line.time_zero_mm}"),
-            )
+    _refuse_outside(scan, low_ps, high_ps, "the stage travel",
+                    f"travel_mm = {list(bench.delay_axis.travel_mm)}, passes = {line.passes}, "
+                    f"time_zero_mm = {line.time_zero_mm}", config_path)
     grid = build_grid_ps(list(scan.delays))
     _check_size(scan, bench, config_path, grid.size)
     positions = np.asarray(line.position_mm(grid), dtype=np.float64)
